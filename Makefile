@@ -1,0 +1,32 @@
+# Everything a fresh machine needs: `make demo` and `make test` create .venv/ and install into it
+# the first time (a stamp file makes later runs a fast no-op until pyproject.toml changes).
+PY      ?= python3.11
+VENV    := .venv
+BIN     := $(VENV)/bin
+STAMP   := $(VENV)/.installed
+export HF_HUB_OFFLINE := 1
+export TRANSFORMERS_OFFLINE := 1
+export TOKENIZERS_PARALLELISM := false
+
+.PHONY: install demo test bench clean
+
+$(BIN)/python:
+	$(PY) -m venv $(VENV)
+
+$(STAMP): pyproject.toml | $(BIN)/python
+	$(BIN)/pip install -q --upgrade-strategy only-if-needed -e '.[test]'
+	touch $(STAMP)
+
+install: $(STAMP)
+
+demo: $(STAMP)
+	$(BIN)/align demo --out runs/demo
+
+test: $(STAMP)
+	$(BIN)/python -m pytest -q
+
+bench: $(STAMP)
+	$(BIN)/python tools/bench.py
+
+clean:
+	rm -rf runs features demo_work bench_out

@@ -1,0 +1,28 @@
+"""File and folder names of everything align writes, in one place."""
+
+# packed data (align pack)
+MANIFEST = "manifest.json"
+REJECTED = "rejected.jsonl"
+SHARD_PATTERN = "{split}-{index:06d}.tar"
+SPLITS = ("train", "val")
+
+# run directory (align train / evaluate)
+RESOLVED_RECIPE = "recipe.resolved.toml"
+METRICS_LOG = "metrics.jsonl"
+METRICS = "metrics.json"
+CHECKPOINTS = "checkpoints"
+CHECKPOINT_PREFIX = "step-"
+TRAINABLE_WEIGHTS = "trainable.safetensors"
+OPTIMIZER_STATE = "optimizer.pt"
+SCHEDULER_STATE = "scheduler.pt"
+TRAINER_STATE = "trainer_state.json"
+RNG_STATE = "rng.pt"
+TOKENIZER_DIR = "tokenizer"
+REPORT = "report.md"
+LOSS_PLOT = "loss.png"
+
+# feature cache
+FEATURE_ROOT = "features"
+FINGERPRINT = "fingerprint.json"
+FEATURES = "features.f16"
+FEATURE_KEYS = "keys.txt"

@@ -1,0 +1,299 @@
+"""The recipe: one typed object that says everything a run does.
+
+A recipe is a TOML file with the sections below. Every field has a default and a one-line
+documentation string (the ``doc`` metadata), unknown keys are rejected by name with the closest
+valid key as a hint, and values are checked before any work starts. ``--set section.key=value``
+overrides are parsed as TOML values ("3", "1e-4", "true", "[1, 5]", or a bare string).
+"""
+from __future__ import annotations
+
+import dataclasses
+import difflib
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, get_args, get_origin, get_type_hints
+
+from .errors import RecipeError
+
+
+def _f(default, doc: str, choices: tuple | None = None):
+    """A recipe field with its documentation (and allowed values) attached."""
+    meta = {"doc": doc, "choices": choices}
+    if isinstance(default, (list, dict)):
+        return field(default_factory=lambda d=default: type(d)(d), metadata=meta)
+    return field(default=default, metadata=meta)
+
+
+@dataclass
+class VisionConfig:
+    model: str = _f("efficientnet_lite0", "timm architecture name of the frozen image tower")
+    weights: str = _f("", "local weights file (safetensors, or a pickle loaded with weights_only); "
+                          "empty = the offline EfficientNet-Lite0 package")
+    image_size: int = _f(0, "input side in pixels; 0 = the tower's native size from its pretrained config")
+    channels_last: bool = _f(True, "run the tower in channels_last memory format (about 2x faster on CPU)")
+    batch_size: int = _f(64, "images per forward pass while embedding")
+    workers: int = _f(0, "DataLoader worker processes decoding images while embedding (0 = main process)")
+    views: int = _f(1, "augmented views cached per training image (random resized crop + flip); "
+                       "one is sampled per epoch")
+
+
+@dataclass
+class TextConfig:
+    kind: str = _f("lora", "text tower: lora (adapter on a pretrained encoder), full (fine-tune it all), "
+                           "scratch (a small encoder trained from nothing)", ("lora", "full", "scratch"))
+    model: str = _f("", "local directory of a pretrained transformers encoder; empty = the offline "
+                        "MiniLM-L6 package (ignored by kind=scratch)")
+    max_length: int = _f(64, "captions are truncated to this many tokens")
+    lora_rank: int = _f(8, "LoRA rank r")
+    lora_alpha: float = _f(16.0, "LoRA scaling alpha (update is alpha/r * B A)")
+    lora_dropout: float = _f(0.0, "dropout on the LoRA branch")
+    lora_targets: list = _f(["query", "value"], "module names that get LoRA adapters")
+    width: int = _f(256, "scratch tower: hidden width")
+    depth: int = _f(4, "scratch tower: transformer layers")
+    heads: int = _f(4, "scratch tower: attention heads")
+    vocab_size: int = _f(2000, "scratch tower: WordPiece vocabulary trained on the training captions")
+    dropout: float = _f(0.1, "scratch tower: dropout inside the encoder")
+    new_tokens: Any = _f([], "domain terms added to the tokenizer: a list of terms, or \"auto\" to mine "
+                             "the captions for terms the tokenizer splits into 3+ pieces")
+    new_tokens_cap: int = _f(64, "at most this many terms are added when new_tokens = \"auto\"")
+
+
+@dataclass
+class DataConfig:
+    shards: str = _f("", "folder written by `align pack` (holds manifest.json and the tar shards)")
+    train_split: str = _f("train", "split used for training")
+    eval_split: str = _f("val", "split used by evaluate")
+
+
+@dataclass
+class LossConfig:
+    kind: str = _f("softmax", "softmax = symmetric InfoNCE; sigmoid = pairwise sigmoid loss",
+                   ("softmax", "sigmoid"))
+    init_temperature: float = _f(0.07, "softmax: initial temperature (logit scale = 1/temperature)")
+    max_logit_scale: float = _f(100.0, "softmax: the logit scale is clamped at this value")
+    learn_temperature: bool = _f(True, "learn the temperature (and the sigmoid bias) with the tower")
+    init_sigmoid_scale: float = _f(10.0, "sigmoid: initial scale t = exp(t'), t' learned")
+    init_sigmoid_bias: float = _f(-10.0, "sigmoid: initial bias b")
+    positives: str = _f("caption+labels", "which in-batch pairs count as positives of each other: "
+                        "caption (same caption text), caption+labels (same text or same labels), pair (only the pair)",
+                        ("pair", "caption", "caption+labels"))
+    block_size: int = _f(0, "compute the loss in blocks of this many rows so B x B is never held; 0 = all at once")
+
+
+@dataclass
+class TrainConfig:
+    steps: int = _f(200, "optimizer steps")
+    batch_size: int = _f(64, "global batch (pairs per step, summed over processes)")
+    chunk_size: int = _f(0, "encode the batch in chunks of this many captions (GradCache; exact "
+                            "gradient in bounded memory); 0 = whole batch at once")
+    lr: float = _f(5e-4, "peak learning rate of the text tower")
+    weight_decay: float = _f(0.01, "AdamW weight decay")
+    warmup_steps: int = _f(20, "linear warm-up steps before the cosine decay")
+    grad_clip: float = _f(1.0, "clip the global gradient norm at this value; 0 = off")
+    seed: int = _f(0, "seed for initialisation, sampling and dropout")
+    precision: str = _f("fp32", "text-step precision: fp32, or bf16 autocast", ("fp32", "bf16"))
+    threads: int = _f(0, "torch CPU threads; 0 = one per core")
+    log_every: int = _f(10, "write a metrics.jsonl line every N steps")
+    checkpoint_every: int = _f(100, "checkpoint every N steps (and always at the end); 0 = only at the end")
+    keep_checkpoints: int = _f(2, "keep this many newest checkpoints")
+    length_buckets: bool = _f(True, "group captions of similar token length inside each batch's chunks")
+
+
+@dataclass
+class EvalConfig:
+    recall_ks: list = _f([1, 5, 10], "K values for recall@K")
+    prompts: list = _f(["a photo of {}.", "an image of {}."], "zero-shot prompt templates ({} = class name)")
+    field_prompts: dict = _f({}, "per label field templates, e.g. {glaze = [\"a {} glazed tile\"]}; "
+                                 "fields not listed use prompts")
+    probe_c: float = _f(1.0, "inverse regularisation strength of the linear probe (logistic regression)")
+    probe_max_iter: int = _f(1000, "linear probe solver iterations")
+
+
+@dataclass
+class Recipe:
+    name: str = _f("run", "a short name for the run")
+    vision: VisionConfig = field(default_factory=VisionConfig)
+    text: TextConfig = field(default_factory=TextConfig)
+    data: DataConfig = field(default_factory=DataConfig)
+    loss: LossConfig = field(default_factory=LossConfig)
+    train: TrainConfig = field(default_factory=TrainConfig)
+    eval: EvalConfig = field(default_factory=EvalConfig)
+
+    def to_dict(self) -> dict:
+        return dataclasses.asdict(self)
+
+
+SECTIONS = {"vision": VisionConfig, "text": TextConfig, "data": DataConfig,
+            "loss": LossConfig, "train": TrainConfig, "eval": EvalConfig}
+
+
+def _suggest(name: str, options) -> str:
+    close = difflib.get_close_matches(name, list(options), n=1)
+    return f"did you mean '{close[0]}'?" if close else "valid keys: " + ", ".join(sorted(options))
+
+
+def _coerce(where: str, value: Any, kind: type, default: Any) -> Any:
+    """Check one value against its field's type; ints are accepted where floats are expected."""
+    if where == "text.new_tokens":
+        if value == "auto" or (isinstance(value, list) and all(isinstance(v, str) for v in value)):
+            return value
+        raise RecipeError(f"{where} must be \"auto\" or a list of terms, got {value!r}")
+    if kind is bool:
+        if isinstance(value, bool):
+            return value
+    elif kind is int:
+        if isinstance(value, int) and not isinstance(value, bool):
+            return value
+    elif kind is float:
+        if isinstance(value, (int, float)) and not isinstance(value, bool):
+            return float(value)
+    elif kind is str:
+        if isinstance(value, str):
+            return value
+    elif kind is list or get_origin(kind) is list:
+        if isinstance(value, list):
+            return value
+    elif kind is dict or get_origin(kind) is dict:
+        if isinstance(value, dict):
+            return value
+    else:
+        return value
+    raise RecipeError(f"{where} must be {kind.__name__}, got {value!r} ({type(value).__name__})",
+                      f"for example {where}={default!r}")
+
+
+def _build(cls, data: dict, prefix: str):
+    hints = get_type_hints(cls)
+    known = {f.name: f for f in dataclasses.fields(cls)}
+    kwargs = {}
+    for key, value in data.items():
+        where = f"{prefix}{key}"
+        if key not in known:
+            raise RecipeError(f"unknown recipe key '{where}'", _suggest(key, known))
+        kind = hints[key]
+        if dataclasses.is_dataclass(kind):
+            if not isinstance(value, dict):
+                raise RecipeError(f"[{key}] must be a table (section), got {value!r}")
+            kwargs[key] = _build(kind, value, f"{key}.")
+            continue
+        default = known[key].default if known[key].default is not dataclasses.MISSING else known[key].default_factory()
+        value = _coerce(where, value, kind, default)
+        choices = known[key].metadata.get("choices")
+        if choices and value not in choices:
+            raise RecipeError(f"{where} = {value!r} is not one of {', '.join(map(repr, choices))}")
+        kwargs[key] = value
+    return cls(**kwargs)
+
+
+def _parse_override(text: str) -> tuple[list[str], Any]:
+    if "=" not in text:
+        raise RecipeError(f"override '{text}' has no '='", "write --set section.key=value, e.g. --set train.steps=50")
+    path, raw = text.split("=", 1)
+    parts = path.strip().split(".")
+    try:
+        value = tomllib.loads(f"v = {raw}")["v"]
+    except tomllib.TOMLDecodeError:
+        value = raw  # a bare word such as a path: keep it as a string
+    return parts, value
+
+
+def apply_overrides(data: dict, overrides: list[str]) -> dict:
+    for text in overrides or []:
+        parts, value = _parse_override(text)
+        node = data
+        for part in parts[:-1]:
+            node = node.setdefault(part, {})
+            if not isinstance(node, dict):
+                raise RecipeError(f"override '{text}': '{part}' is not a section")
+        node[parts[-1]] = value
+    return data
+
+
+def _validate(recipe: Recipe) -> None:
+    t, tr, v, lo = recipe.text, recipe.train, recipe.vision, recipe.loss
+    positive = {"train.steps": tr.steps, "train.batch_size": tr.batch_size, "text.max_length": t.max_length,
+                "vision.batch_size": v.batch_size, "vision.views": v.views, "text.lora_rank": t.lora_rank,
+                "text.width": t.width, "text.depth": t.depth, "text.heads": t.heads}
+    for where, value in positive.items():
+        if value < 1:
+            raise RecipeError(f"{where} must be at least 1, got {value}")
+    if tr.lr <= 0:
+        raise RecipeError(f"train.lr must be positive, got {tr.lr}")
+    if tr.chunk_size < 0 or tr.chunk_size > tr.batch_size:
+        raise RecipeError(f"train.chunk_size must be between 0 and train.batch_size ({tr.batch_size}), got {tr.chunk_size}")
+    if t.kind == "scratch" and t.width % t.heads:
+        raise RecipeError(f"text.width ({t.width}) must be divisible by text.heads ({t.heads})")
+    if not 0 < lo.init_temperature < 1:
+        raise RecipeError(f"loss.init_temperature must be in (0, 1), got {lo.init_temperature}")
+    if v.image_size and v.image_size < 32:
+        raise RecipeError(f"vision.image_size must be 0 (native) or at least 32, got {v.image_size}")
+    for tpl in recipe.eval.prompts + [p for ps in recipe.eval.field_prompts.values() for p in ps]:
+        if "{}" not in tpl:
+            raise RecipeError(f"prompt template {tpl!r} has no '{{}}' for the class name")
+    if any(k < 1 for k in recipe.eval.recall_ks):
+        raise RecipeError("eval.recall_ks must all be at least 1")
+
+
+def recipe_from_dict(data: dict) -> Recipe:
+    recipe = _build(Recipe, data, "")
+    _validate(recipe)
+    return recipe
+
+
+def load_recipe(path: str | Path | None, overrides: list[str] | None = None) -> Recipe:
+    """Read a TOML recipe (or start from defaults when path is None) and apply overrides."""
+    data: dict = {}
+    if path is not None:
+        path = Path(path)
+        if not path.is_file():
+            raise RecipeError(f"no recipe at {path}", "pass a TOML file, e.g. recipes/lora-cpu.toml")
+        try:
+            data = tomllib.loads(path.read_text(encoding="utf-8"))
+        except tomllib.TOMLDecodeError as exc:
+            raise RecipeError(f"{path} is not valid TOML: {exc}") from None
+    return recipe_from_dict(apply_overrides(data, overrides or []))
+
+
+def recipe_from_toml(text: str, overrides: list[str] | None = None) -> Recipe:
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise RecipeError(f"recipe is not valid TOML: {exc}") from None
+    return recipe_from_dict(apply_overrides(data, overrides or []))
+
+
+def _toml_value(value: Any) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, (int, float)):
+        return repr(value)
+    if isinstance(value, str):
+        return '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(value, list):
+        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
+    if isinstance(value, dict):
+        return "{" + ", ".join(f"{k} = {_toml_value(v)}" for k, v in value.items()) + "}"
+    raise TypeError(f"cannot write {value!r} as TOML")
+
+
+def dump_recipe(recipe: Recipe) -> str:
+    """The resolved recipe as TOML, every field written out, each with its documentation."""
+    lines = [f"name = {_toml_value(recipe.name)}"]
+    for section, cls in SECTIONS.items():
+        lines += ["", f"[{section}]"]
+        obj = getattr(recipe, section)
+        for f in dataclasses.fields(cls):
+            lines.append(f"# {f.metadata['doc']}")
+            lines.append(f"{f.name} = {_toml_value(getattr(obj, f.name))}")
+    return "\n".join(lines) + "\n"
+
+
+def describe_fields() -> list[tuple[str, str, str]]:
+    """(key, default, doc) for every recipe field: the recipe reference in the README comes from this."""
+    rows = [("name", _toml_value(Recipe().name), "a short name for the run")]
+    for section, cls in SECTIONS.items():
+        for f in dataclasses.fields(cls):
+            default = f.default if f.default is not dataclasses.MISSING else f.default_factory()
+            rows.append((f"{section}.{f.name}", _toml_value(default), f.metadata["doc"]))
+    return rows
