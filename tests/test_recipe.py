@@ -45,3 +45,13 @@ def test_resolved_recipe_round_trips():
     r = recipe_from_toml("", ["train.steps=9", "text.kind=scratch", 'eval.field_prompts={glaze = ["a {} tile"]}'])
     again = recipe_from_toml(dump_recipe(r))
     assert again == r
+
+
+def test_readme_recipe_reference_is_current():
+    # the README's recipe table is generated from the schema (tools/recipe_reference.py)
+    import subprocess
+    import sys
+
+    tool = Path(__file__).resolve().parent.parent / "tools" / "recipe_reference.py"
+    assert subprocess.run([sys.executable, str(tool), "--check"]).returncode == 0, \
+        "README recipe reference is stale: run tools/recipe_reference.py"
