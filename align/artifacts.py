@@ -26,3 +26,20 @@ FEATURE_ROOT = "features"
 FINGERPRINT = "fingerprint.json"
 FEATURES = "features.f16"
 FEATURE_KEYS = "keys.txt"
+
+# export (align export)
+EXPORT_INFO = "export.json"
+EXPORT_ADAPTER = "adapter"
+EXPORT_TEXT_ENCODER = "text_encoder"
+EXPORT_ONNX = "text_encoder.onnx"
+IMAGE_SIDE = "image_side.json"
+CARD_JSON = "card.json"
+CARD_MD = "CARD.md"
+PROJECTION = "projection.safetensors"
+TEXT_HEAD = "head.json"
+TEXT_HEAD_README = "README.md"
+
+# gallery index (align index / query)
+INDEX_INFO = "index.json"
+INDEX_EMBEDDINGS = "embeddings.npy"
+INDEX_KEYS = "keys.txt"
