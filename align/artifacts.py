@@ -18,6 +18,7 @@ SCHEDULER_STATE = "scheduler.pt"
 TRAINER_STATE = "trainer_state.json"
 RNG_STATE = "rng.pt"
 TOKENIZER_DIR = "tokenizer"
+NEW_TOKENS = "new_tokens.json"  # inside TOKENIZER_DIR: the domain terms added to the tokenizer
 REPORT = "report.md"
 LOSS_PLOT = "loss.png"
 

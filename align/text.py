@@ -7,6 +7,11 @@ projection to the image feature width, L2 normalisation:
 - ``full``: the same encoder with every weight trainable;
 - ``scratch``: a small BERT-shaped encoder initialised at random, with a WordPiece tokenizer
   trained on the training captions (so the export path is the same for every kind).
+
+``text.new_tokens`` (a list of terms, or "auto" to mine the captions) adds the trade's words to the
+tokenizer as whole tokens (align/vocab.py). For ``lora`` only the new embedding rows train, beside
+the adapter (peft's trainable tokens); every old row stays bit-identical. The extended tokenizer and
+the term list are saved in the run's tokenizer folder, so evaluate, resume and export rebuild it.
 """
 from __future__ import annotations
 
@@ -123,7 +128,7 @@ def _pretrained_encoder(cfg: TextConfig):
     return encoder, tokenizer
 
 
-def _add_lora(encoder: nn.Module, cfg: TextConfig) -> nn.Module:
+def _add_lora(encoder: nn.Module, cfg: TextConfig, new_token_ids: Sequence[int] = ()) -> nn.Module:
     from peft import LoraConfig, get_peft_model
 
     names = {name.rsplit(".", 1)[-1] for name, _ in encoder.named_modules()}
@@ -131,9 +136,82 @@ def _add_lora(encoder: nn.Module, cfg: TextConfig) -> nn.Module:
     if missing:
         raise AlignError(f"text.lora_targets {missing} name no module of this encoder",
                          "pick from its linear layers, e.g. query, key, value, dense")
+    # trainable tokens: only these rows of the input embedding learn (stored as an (n, H) delta)
     lora = LoraConfig(r=cfg.lora_rank, lora_alpha=cfg.lora_alpha, lora_dropout=cfg.lora_dropout,
-                      target_modules=list(cfg.lora_targets), bias="none")
+                      target_modules=list(cfg.lora_targets), bias="none",
+                      trainable_token_indices=list(new_token_ids) or None)
     return get_peft_model(encoder, lora)
+
+
+def _chosen_terms(cfg: TextConfig, tokenizer, train_captions: Sequence[str] | None) -> list[str]:
+    from .vocab import mine_terms, resolve_terms
+
+    if cfg.new_tokens == "auto":
+        if not train_captions:
+            raise AlignError("text.new_tokens = \"auto\" mines the training captions, and none were given",
+                             "train the run first (align train); evaluate and resume reuse its tokenizer folder")
+        return resolve_terms(tokenizer, mine_terms(tokenizer, train_captions, cfg.new_tokens_cap))
+    return resolve_terms(tokenizer, cfg.new_tokens)
+
+
+def _domain_vocabulary(cfg: TextConfig, encoder: nn.Module, base_tokenizer, train_captions: Sequence[str] | None,
+                       tokenizer_dir: Path | None):
+    """Extend a pretrained tokenizer and embedding matrix; returns (tokenizer, new token ids).
+
+    A vocabulary stored by this recipe in ``tokenizer_dir`` is reused (resume, evaluate): mined terms
+    depend on the training captions, so they are never re-mined behind a checkpoint's back.
+    """
+    from transformers import AutoTokenizer
+
+    from .vocab import (copy_tokenizer, extend_embeddings, extend_tokenizer, read_term_record, record_matches,
+                        save_tokenizer_dir, term_record)
+
+    base_model = str(text_model_dir(cfg))
+    record = read_term_record(tokenizer_dir)
+    if record_matches(record, cfg.new_tokens, cfg.new_tokens_cap, base_model):
+        terms, new_ids = record["terms"], record["token_ids"]
+        tokenizer = AutoTokenizer.from_pretrained(str(tokenizer_dir), local_files_only=True)
+        if [int(i) for i in tokenizer.convert_tokens_to_ids(terms)] != new_ids or len(tokenizer) != len(
+                base_tokenizer) + len(terms):
+            raise AlignError(f"the tokenizer in {tokenizer_dir} does not match its {len(terms)} recorded terms",
+                             "the run folder was edited; train the run again")
+    else:
+        if record is not None and not train_captions:
+            raise AlignError(f"the vocabulary in {tokenizer_dir} was made by another recipe",
+                             "evaluate or resume with the run's own recipe.resolved.toml")
+        terms = _chosen_terms(cfg, base_tokenizer, train_captions)
+        tokenizer = copy_tokenizer(base_tokenizer)
+        new_ids = extend_tokenizer(tokenizer, terms)
+        if tokenizer_dir is not None:
+            save_tokenizer_dir(tokenizer, Path(tokenizer_dir),
+                               term_record(cfg.new_tokens, cfg.new_tokens_cap, terms, new_ids, base_tokenizer,
+                                           base_model))
+    if terms:
+        extend_embeddings(encoder, base_tokenizer, terms, new_ids)
+    return tokenizer, new_ids
+
+
+def _scratch_tokenizer(cfg: TextConfig, train_captions: Sequence[str] | None, tokenizer_dir: Path | None):
+    """Reload the run's caption-trained tokenizer, or learn one (plus any domain terms) and save it."""
+    from transformers import PreTrainedTokenizerFast
+
+    from .vocab import extend_tokenizer, save_tokenizer_dir, term_record
+
+    if tokenizer_dir is not None and (Path(tokenizer_dir) / "tokenizer.json").is_file():
+        return PreTrainedTokenizerFast.from_pretrained(str(tokenizer_dir))
+    if not train_captions:
+        raise AlignError("a scratch text tower needs its tokenizer", "train it first (align train)")
+    tokenizer = train_scratch_tokenizer(train_captions, cfg.vocab_size)
+    record = None
+    if cfg.new_tokens:  # rows of a random encoder: no pieces to average, they learn like every other row
+        base_size = len(tokenizer)
+        terms = _chosen_terms(cfg, tokenizer, train_captions)
+        new_ids = extend_tokenizer(tokenizer, terms)
+        record = term_record(cfg.new_tokens, cfg.new_tokens_cap, terms, new_ids, tokenizer, "scratch")
+        record["base_vocab_size"] = base_size
+    if tokenizer_dir is not None:
+        save_tokenizer_dir(tokenizer, Path(tokenizer_dir), record)
+    return tokenizer
 
 
 def build_text_tower(cfg: TextConfig, out_dim: int, *, seed: int = 0, train_captions: Sequence[str] | None = None,
@@ -141,26 +219,23 @@ def build_text_tower(cfg: TextConfig, out_dim: int, *, seed: int = 0, train_capt
     """Build a fresh tower of the recipe's kind.
 
     ``scratch`` needs either ``train_captions`` (a tokenizer is learned and saved to ``tokenizer_dir``)
-    or an existing ``tokenizer_dir`` to reload it (resume, evaluate). The projection and any random
+    or an existing ``tokenizer_dir`` to reload it (resume, evaluate); so does ``text.new_tokens``
+    (terms mined or listed, the extended tokenizer saved with its term record). The projection and any random
     init are seeded, so the same recipe and seed build the same starting weights.
     """
     torch.manual_seed(seed)
     if cfg.kind == "scratch":
-        from transformers import PreTrainedTokenizerFast
-
-        if tokenizer_dir is not None and (Path(tokenizer_dir) / "tokenizer.json").is_file():
-            tokenizer = PreTrainedTokenizerFast.from_pretrained(str(tokenizer_dir))
-        elif train_captions:
-            tokenizer = train_scratch_tokenizer(train_captions, cfg.vocab_size, tokenizer_dir)
-        else:
-            raise AlignError("a scratch text tower needs its tokenizer", "train it first (align train)")
+        tokenizer = _scratch_tokenizer(cfg, train_captions, tokenizer_dir)
         torch.manual_seed(seed)
         encoder = _scratch_encoder(cfg, len(tokenizer))
     else:
         encoder, tokenizer = _pretrained_encoder(cfg)
+        new_ids: list[int] = []
+        if cfg.new_tokens:
+            tokenizer, new_ids = _domain_vocabulary(cfg, encoder, tokenizer, train_captions, tokenizer_dir)
         if cfg.kind == "lora":
-            encoder = _add_lora(encoder, cfg)
-        else:
+            encoder = _add_lora(encoder, cfg, new_ids)
+        else:  # full: the whole matrix trains anyway, new rows included
             encoder.requires_grad_(True)
     torch.manual_seed(seed + 1)
     return TextTower(encoder, tokenizer, out_dim, cfg.kind, cfg.max_length)
