@@ -27,6 +27,9 @@ FEATURE_ROOT = "features"
 FINGERPRINT = "fingerprint.json"
 FEATURES = "features.f16"
 FEATURE_KEYS = "keys.txt"
+FEATURE_SKIPPED = "skipped.txt"  # keys whose image failed to decode
+FEATURE_CHUNKS = "chunks"  # finished chunks of a build in progress (removed when it completes)
+FEATURE_LOCK = ".lock"  # held while a process builds the entry
 
 # export (align export)
 EXPORT_INFO = "export.json"

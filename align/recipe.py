@@ -36,6 +36,8 @@ class VisionConfig:
     workers: int = _f(0, "DataLoader worker processes decoding images while embedding (0 = main process)")
     views: int = _f(1, "augmented views cached per training image (random resized crop + flip); "
                        "one is sampled per epoch")
+    feature_cache: str = _f("", "folder of the frozen-feature cache (one sub-folder per fingerprint); "
+                                "empty = features/ inside the packed shards folder")
 
 
 @dataclass
