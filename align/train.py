@@ -26,7 +26,7 @@ from .errors import AlignError
 from .features import image_features
 from .loss import build_loss, positive_ids
 from .recipe import Recipe, dump_recipe
-from .step import contrastive_step
+from .step import contrastive_step, step_seed
 from .text import TextTower, build_text_tower
 from .vision import load_image_tower
 
@@ -168,17 +168,16 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, console:
     ``on_step`` is called after every logged step with the log record; returning False stops the run
     after a checkpoint (the service uses it for cancel). ``data`` lets callers reuse prepared features.
     """
-    from accelerate import Accelerator
-
     console = console or Console(stderr=True)
     _quiet_transformers()
     run_dir = Path(run_dir)
     cfg = recipe.train
-    torch.set_num_threads(cfg.threads or os.cpu_count() or 1)
 
-    # Phase 1: the run folder. The resolved recipe sits beside every checkpoint, so a run can always
-    # be evaluated, resumed or exported with exactly what trained it.
-    accelerator = Accelerator(cpu=not torch.cuda.is_available())
+    # Phase 1: the process group and the run folder. The resolved recipe sits beside every
+    # checkpoint, so a run can always be evaluated, resumed or exported with exactly what trained it.
+    accelerator = _accelerator()
+    # processes sharing a machine share its cores; more threads than cores only thrash
+    torch.set_num_threads(cfg.threads or max(1, (os.cpu_count() or 1) // _local_world_size()))
     is_main = accelerator.is_main_process
     recipe_toml = dump_recipe(recipe)
     previous = latest_checkpoint(run_dir) if resume else None
@@ -189,7 +188,7 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, console:
         write_text_atomic(run_dir / A.RESOLVED_RECIPE, recipe_toml)
 
     # Phase 2: frozen features. The image tower runs once per image here and never again in the loop.
-    data = data or prepare_training_data(recipe, console)
+    data = data or shared_training_data(recipe, console, accelerator)
     world, rank = accelerator.num_processes, accelerator.process_index
     if cfg.batch_size % world:
         raise AlignError(f"train.batch_size {cfg.batch_size} does not split over {world} processes",
@@ -239,7 +238,8 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, console:
             loss = contrastive_step(
                 model, tower, loss_fn, [data.captions[i] for i in mine.tolist()], feats[batch],
                 data.caption_ids[batch], data.label_ids[batch] if data.label_ids is not None else None,
-                accelerator, autocast)
+                accelerator, autocast, chunk_size=cfg.chunk_size, length_buckets=cfg.length_buckets,
+                seed=step_seed(cfg.seed, step))
             if cfg.grad_clip > 0:
                 accelerator.clip_grad_norm_(list(named.values()), cfg.grad_clip)
             optimizer.step()
@@ -276,6 +276,48 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, console:
             "final_loss": last_record.get("loss"), "pairs_per_s": last_record.get("pairs_per_s"),
             "elapsed_s": total_elapsed, "train_pairs": len(data.captions),
             "tower_fingerprint": data.tower_fingerprint}
+
+
+def _accelerator():
+    """Accelerate's Accelerator: one process, or one rank of a torchrun / accelerate launch group.
+
+    On CPU under a launcher, accelerate starts a gloo group itself (MULTI_CPU); on GPUs, NCCL.
+    find_unused_parameters: a full fine-tune keeps the encoder's pooler trainable although the tower
+    pools its own way, and DDP would otherwise wait forever for the pooler's gradient.
+    """
+    from accelerate import Accelerator
+    from accelerate.utils import DistributedDataParallelKwargs
+
+    return Accelerator(cpu=not torch.cuda.is_available(),
+                       kwargs_handlers=[DistributedDataParallelKwargs(find_unused_parameters=True)])
+
+
+def _local_world_size() -> int:
+    return int(os.environ.get("LOCAL_WORLD_SIZE", "1"))
+
+
+def shared_training_data(recipe: Recipe, console: Console, accelerator) -> TrainingData:
+    """The training table on every rank, built once.
+
+    Rank 0 reads the shards and embeds (or loads the cached) image features; the other ranks wait
+    and receive the same table over the process group, so no rank decodes an image twice and every
+    rank holds identical rows (the sampler and the loss rely on that). Works across machines
+    without a shared disk. Cost: one broadcast of the (N, D) features per run.
+    """
+    if accelerator.num_processes == 1:
+        return prepare_training_data(recipe, console)
+    import torch.distributed as dist
+
+    box: list = [None]
+    if accelerator.is_main_process:
+        try:
+            box[0] = prepare_training_data(recipe, console)
+        except AlignError as exc:  # the others must hear of it, or they wait in the broadcast forever
+            box[0] = exc
+    dist.broadcast_object_list(box, src=0)
+    if isinstance(box[0], AlignError):
+        raise box[0]
+    return box[0]
 
 
 class _NullProgress:
