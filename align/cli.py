@@ -53,6 +53,22 @@ def cmd_demo(args) -> int:
     return 0
 
 
+def cmd_vocab(args) -> int:
+    import json
+
+    from .vocab import report_tables, shards_vocab_report
+    report = shards_vocab_report(args.shards, split=args.split, text_model=args.text_model or "", cap=args.cap,
+                                 scratch_vocab_size=args.scratch_vocab_size, top=args.top)
+    if args.json:
+        print(json.dumps(report, indent=2))
+    else:
+        out = Console()
+        for table in report_tables(report, top=args.top):
+            out.print(table)
+        out.print(report["headline"])
+    return 0
+
+
 def _add_recipe_args(p: argparse.ArgumentParser, required: bool = True) -> None:
     if required:
         p.add_argument("recipe", help="recipe TOML file, e.g. recipes/lora-cpu.toml")
@@ -84,6 +100,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--shards", help="evaluate on another packed folder (its val split)")
     p.add_argument("--tag", help="prefix for the metric keys of this evaluation set, e.g. heldout")
     p.set_defaults(func=cmd_evaluate)
+
+    p = sub.add_parser("vocab", help="how the text tokenizer splits the captions' words; terms worth adding")
+    p.add_argument("shards", help="a folder written by align pack")
+    p.add_argument("--text-model", help="local transformers model directory (default: the offline MiniLM-L6)")
+    p.add_argument("--split", default="train", help="split whose captions are read")
+    p.add_argument("--cap", type=int, default=64, help="terms new_tokens = \"auto\" would add at most")
+    p.add_argument("--scratch-vocab-size", type=int, default=2000, help="size of the caption-trained WordPiece")
+    p.add_argument("--top", type=int, default=20, help="fragmented terms listed")
+    p.add_argument("--json", action="store_true", help="print the report as JSON on stdout")
+    p.set_defaults(func=cmd_vocab)
 
     p = sub.add_parser("demo", help="draw the tile catalogue, pack, train, evaluate, summarise")
     p.add_argument("--out", default="runs/demo", help="run folder of the demo")

@@ -20,6 +20,7 @@ from .data.pack import pack_source
 from .evaluate import evaluate_run
 from .recipe import load_recipe
 from .train import train
+from .vocab import shards_vocab_report
 
 DEFAULT_RECIPE = Path(__file__).resolve().parent.parent / "recipes" / "demo-cpu.toml"
 CATALOGUE_SEED = 0
@@ -50,6 +51,9 @@ def run_demo(out: Path, data_dir: Path | None = None, recipe_path: str | None = 
     shards, heldout = prepare_demo_data(data_dir, console)
 
     recipe = load_recipe(recipe_path or DEFAULT_RECIPE, [f"data.shards={json.dumps(str(shards))}", *(overrides or [])])
+    # how the text tokenizer reads the catalogue's trade words (cheap: tokenizers only, no model)
+    vocab = shards_vocab_report(shards, text_model=recipe.text.model, cap=recipe.text.new_tokens_cap,
+                                scratch_vocab_size=recipe.text.vocab_size)
     if out.exists():  # the demo always trains afresh into its own folder
         shutil.rmtree(out)
     console.rule("training")
@@ -82,5 +86,8 @@ def run_demo(out: Path, data_dir: Path | None = None, recipe_path: str | None = 
     for name, value in rows:
         table.add_row(name, value)
     Console().print(table)
+    Console().print(f"vocabulary: {vocab['headline']}"
+                    + (f" (this run extends its tokenizer: text.new_tokens = {recipe.text.new_tokens!r})"
+                       if recipe.text.new_tokens else "; `align vocab` has the terms, text.new_tokens = \"auto\" adds them"))
     console.print(f"run folder: {out}  (metrics: {out / A.METRICS})")
-    return {"held_in": held_in, "held_out": held_out, "wall_s": wall, "train": summary}
+    return {"held_in": held_in, "held_out": held_out, "wall_s": wall, "train": summary, "vocab": vocab}

@@ -109,6 +109,7 @@ class TokenizerStats:
     words: int  # word occurrences of letters only
     split_words: int  # of those, split into MIN_PIECES or more
     split_rate: float  # split_words / words
+    split_any_rate: float  # share of word occurrences in 2+ pieces (any split at all)
     captions_with_split_term: float  # share of captions holding at least one fragmented word
     fragmented_terms: list[FragmentedTerm] = field(default_factory=list)
 
@@ -126,7 +127,7 @@ def tokenizer_stats(tokenizer, captions: Sequence[str], name: str, min_pieces: i
     pieces_cache: dict[str, list[str]] = {}
     occurrences: Counter = Counter()
     caption_hits: Counter = Counter()
-    words = split_words = captions_with = 0
+    words = split_words = split_any = captions_with = 0
     for caption in captions:
         fragmented_here = set()
         for word in words_of(tokenizer, caption):
@@ -135,6 +136,7 @@ def tokenizer_stats(tokenizer, captions: Sequence[str], name: str, min_pieces: i
             words += 1
             if word not in pieces_cache:
                 pieces_cache[word] = pieces_of(tokenizer, word)
+            split_any += len(pieces_cache[word]) >= 2
             if len(pieces_cache[word]) >= min_pieces:
                 split_words += 1
                 occurrences[word] += 1
@@ -145,7 +147,8 @@ def tokenizer_stats(tokenizer, captions: Sequence[str], name: str, min_pieces: i
     return TokenizerStats(
         name=name, vocab_size=len(tokenizer), tokens_per_caption_mean=float(lengths.mean()),
         tokens_per_caption_p95=float(np.percentile(lengths, 95)), words=words, split_words=split_words,
-        split_rate=split_words / max(words, 1), captions_with_split_term=captions_with / len(captions),
+        split_rate=split_words / max(words, 1), split_any_rate=split_any / max(words, 1),
+        captions_with_split_term=captions_with / len(captions),
         fragmented_terms=[FragmentedTerm(w, pieces_cache[w], occurrences[w], caption_hits[w]) for w in ranked])
 
 
@@ -193,8 +196,8 @@ def headline(report: dict) -> str:
             f"tokenizer ({top}{', …' if base['fragmented_terms_total'] > 4 else ''}) appear in "
             f"{base['captions_with_split_term']:.0%} of captions; tokens/caption {base['tokens_per_caption_mean']:.1f} "
             f"-> {ext['tokens_per_caption_mean']:.1f} with {len(report['mined_terms'])} terms added; "
-            f"a tokenizer learned on the captions splits {own['split_rate']:.1%} of words "
-            f"(base: {base['split_rate']:.1%})")
+            f"a tokenizer learned on the captions splits {own['split_any_rate']:.1%} of words at all "
+            f"(base: {base['split_any_rate']:.1%})")
 
 
 def report_tables(report: dict, top: int = 20):
@@ -210,6 +213,7 @@ def report_tables(report: dict, top: int = 20):
             ("tokens / caption (mean)", lambda s: f"{s['tokens_per_caption_mean']:.2f}"),
             ("tokens / caption (p95)", lambda s: f"{s['tokens_per_caption_p95']:.1f}"),
             (f"words split into {report['min_pieces']}+ pieces", lambda s: f"{s['split_rate']:.1%}"),
+            ("words split at all (2+ pieces)", lambda s: f"{s['split_any_rate']:.1%}"),
             ("captions holding such a word", lambda s: f"{s['captions_with_split_term']:.1%}"),
             ("distinct fragmented words", lambda s: f"{s['fragmented_terms_total']}")]
     for label, fmt in rows:
@@ -325,3 +329,27 @@ def save_tokenizer_dir(tokenizer, tokenizer_dir: Path, record: dict | None) -> N
         os.replace(tokenizer_dir, old)
     os.replace(tmp, tokenizer_dir)
     shutil.rmtree(old, ignore_errors=True)
+
+
+def load_base_tokenizer(text_model: str = ""):
+    """The tokenizer of a local pretrained encoder (empty = the offline default model)."""
+    from transformers import AutoTokenizer
+
+    from .recipe import TextConfig
+    from .text import text_model_dir
+
+    path = text_model_dir(TextConfig(model=text_model))
+    return AutoTokenizer.from_pretrained(str(path), local_files_only=True), str(path)
+
+
+def shards_vocab_report(shards_dir: str | Path, split: str = "train", text_model: str = "", cap: int = 64,
+                        scratch_vocab_size: int = 2000, top: int = 20) -> dict:
+    """``align vocab``: the report over one split of a packed folder."""
+    from .data.shards import load_table
+
+    captions = load_table(shards_dir, split).captions
+    tokenizer, path = load_base_tokenizer(text_model)
+    report = vocab_report(captions, tokenizer, cap=cap, scratch_vocab_size=scratch_vocab_size, top=top,
+                          text_model=path)
+    report.update(shards=str(shards_dir), split=split)
+    return report
