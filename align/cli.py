@@ -46,6 +46,15 @@ def cmd_evaluate(args) -> int:
     return 0
 
 
+def cmd_features(args) -> int:
+    from .features import build_recipe_features
+    for feats in build_recipe_features(_recipe(args), console=console):
+        how = (f"built, {feats.build.images_per_s:.0f} img/s" if feats.build else "already cached")
+        console.print(f"{feats.fingerprint['split']}: {len(feats.keys)} images x {feats.views} view(s) "
+                      f"({how}) in {feats.path}")
+    return 0
+
+
 def cmd_demo(args) -> int:
     from .demo_pipeline import run_demo
     run_demo(Path(args.out), data_dir=Path(args.data_dir) if args.data_dir else None,
@@ -66,6 +75,40 @@ def cmd_vocab(args) -> int:
         for table in report_tables(report, top=args.top):
             out.print(table)
         out.print(report["headline"])
+    return 0
+
+
+def cmd_export(args) -> int:
+    from .export import export_run
+    export_run(args.run_dir, args.out, checkpoint=args.checkpoint, onnx=not args.no_onnx, console=console)
+    return 0
+
+
+def cmd_index(args) -> int:
+    from .index import build_index
+    build_index(args.export_dir, args.source, args.out, weights=args.weights, embeddings=args.embeddings,
+                keys=args.keys, sample=args.check_sample, console=console)
+    return 0
+
+
+def cmd_query(args) -> int:
+    import json
+
+    from .index import query_index
+    backend = "faiss" if args.faiss else args.backend
+    answer = query_index(args.index, args.text, k=args.k, backend=backend, export_dir=args.export)
+    if args.json:
+        print(json.dumps(answer, ensure_ascii=False))
+        return 0
+    from rich.table import Table
+    for item in answer["queries"]:
+        table = Table(title=item["text"], show_header=True)
+        table.add_column("rank", justify="right")
+        table.add_column("key")
+        table.add_column("score", justify="right")
+        for hit in item["results"]:
+            table.add_row(str(hit["rank"]), hit["key"], f"{hit['score']:.4f}")
+        Console().print(table)
     return 0
 
 
@@ -101,6 +144,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--tag", help="prefix for the metric keys of this evaluation set, e.g. heldout")
     p.set_defaults(func=cmd_evaluate)
 
+    p = sub.add_parser("features", help="cache the frozen image features a recipe needs, ahead of training")
+    _add_recipe_args(p)
+    p.set_defaults(func=cmd_features)
+
     p = sub.add_parser("vocab", help="how the text tokenizer splits the captions' words; terms worth adding")
     p.add_argument("shards", help="a folder written by align pack")
     p.add_argument("--text-model", help="local transformers model directory (default: the offline MiniLM-L6)")
@@ -117,6 +164,34 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--recipe", default=None, help="recipe (default recipes/demo-cpu.toml)")
     _add_recipe_args(p, required=False)
     p.set_defaults(func=cmd_demo)
+
+    p = sub.add_parser("export", help="adapter, merged encoder, ONNX, image-side contract and card of a run")
+    p.add_argument("run_dir", help="a folder written by align train")
+    p.add_argument("--out", required=True, help="export folder (replaced only once the new export is complete)")
+    p.add_argument("--checkpoint", help="a checkpoint folder of the run (default: the newest)")
+    p.add_argument("--no-onnx", action="store_true", help="skip text_encoder.onnx")
+    p.set_defaults(func=cmd_export)
+
+    p = sub.add_parser("index", help="embed a gallery with the frozen tower (or adopt stored embeddings) for search")
+    p.add_argument("export_dir", help="a folder written by align export")
+    p.add_argument("source", help="a folder of images, or a folder written by align pack")
+    p.add_argument("--out", required=True, help="index folder")
+    p.add_argument("--weights", help="the frozen tower's weights file (default: as recorded in image_side.json)")
+    p.add_argument("--embeddings", help="adopt these stored image embeddings (.npy, N x D) instead of embedding")
+    p.add_argument("--keys", help="with --embeddings: one key per row (packed sample key or path in SOURCE)")
+    p.add_argument("--check-sample", type=int, default=8, help="images re-embedded to check adopted embeddings")
+    p.set_defaults(func=cmd_index)
+
+    p = sub.add_parser("query", help="search a gallery index with text")
+    p.add_argument("index", help="a folder written by align index")
+    p.add_argument("text", nargs="+", help="one or more query texts")
+    p.add_argument("-k", type=int, default=10, help="results per query")
+    p.add_argument("--json", action="store_true", help="print the results as one JSON object")
+    p.add_argument("--backend", choices=("auto", "numpy", "faiss"), default="auto",
+                   help="exact inner-product search: numpy, faiss IndexFlatIP, or auto (faiss for large galleries)")
+    p.add_argument("--faiss", action="store_true", help="same as --backend faiss")
+    p.add_argument("--export", help="the export to embed queries with (default: the one the index was built with)")
+    p.set_defaults(func=cmd_query)
     return parser
 
 
