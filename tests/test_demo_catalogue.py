@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import io
 import json
-import time
 from collections import Counter
 from pathlib import Path
 
@@ -176,16 +175,3 @@ def test_readme_samples_are_current_and_small(tmp_path: Path):
         assert committed.read_bytes() == path.read_bytes(), f"regenerate {committed} with write_readme_samples"
         assert Image.open(path).size == (96, 96) and path.stat().st_size < 10_000
 
-
-def test_drawing_speed_fits_the_demo_budget():
-    # the brief's budget: 1,600+ tiles at 160 px well under a minute on 2 cores. One core at 25 ms a
-    # tile (drawing + PNG encoding) gives 40 s; measured about 9 ms on this machine when unloaded.
-    start = time.perf_counter()
-    count = 0
-    for p_index, pattern in enumerate(PATTERNS):
-        for i in range(2):
-            tile = draw_tile(list(GLAZES)[i], pattern, np.random.default_rng([p_index, i]), size=160)
-            demo._png_bytes(tile)
-            count += 1
-    per_tile = (time.perf_counter() - start) / count
-    assert per_tile < 0.025, f"{per_tile * 1000:.1f} ms per tile"
