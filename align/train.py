@@ -23,7 +23,7 @@ from .checkpoint import (apply_weights, latest_checkpoint, load_training_state, 
                          write_text_atomic)
 from .data.shards import load_table, read_manifest
 from .errors import AlignError
-from .features import image_features
+from .features import ViewSchedule, image_features, view_batch
 from .loss import build_loss, positive_ids
 from .recipe import Recipe, dump_recipe
 from .step import contrastive_step, step_seed
@@ -42,6 +42,7 @@ class TrainingData:
     caption_ids: torch.Tensor  # (N,) equal id = same caption text
     label_ids: torch.Tensor | None  # (N,) equal id = same labels; -1 = none
     tower_fingerprint: dict
+    image_views: torch.Tensor | None = None  # (N, K, D) float16 when vision.views > 1; view 0 = image_features
 
 
 def _quiet_transformers() -> None:
@@ -64,7 +65,8 @@ def prepare_training_data(recipe: Recipe, console: Console) -> TrainingData:
     data_dir = shards_dir(recipe)
     table = load_table(data_dir, recipe.data.train_split)
     tower = load_image_tower(recipe.vision)
-    feats = image_features(tower, data_dir, recipe.data.train_split, recipe.vision, console)
+    feats = image_features(tower, data_dir, recipe.data.train_split, recipe.vision, console,
+                           views=recipe.vision.views)
     keep = set(feats.keys)
     rows = [i for i, k in enumerate(table.keys) if k in keep]  # images that failed to decode drop out
     keys = [table.keys[i] for i in rows]
@@ -72,7 +74,8 @@ def prepare_training_data(recipe: Recipe, console: Console) -> TrainingData:
     labels = [table.labels[i] for i in rows]
     caption_ids, label_ids = positive_ids(captions, labels, recipe.loss.positives)
     return TrainingData(keys=keys, captions=captions, labels=labels, image_features=feats.rows_for(keys),
-                        caption_ids=caption_ids, label_ids=label_ids, tower_fingerprint=tower.fingerprint)
+                        caption_ids=caption_ids, label_ids=label_ids, tower_fingerprint=tower.fingerprint,
+                        image_views=feats.view_rows_for(keys) if feats.views > 1 else None)
 
 
 class EpochSampler:
@@ -214,6 +217,10 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, console:
     model, optimizer = accelerator.prepare(tower, optimizer)
     loss_fn.to(accelerator.device)
     feats = data.image_features.to(accelerator.device)
+    # several cached views: each row shows one per epoch, drawn from (seed, epoch) so resume replays it
+    image_views = data.image_views.to(accelerator.device) if data.image_views is not None else None
+    views = (ViewSchedule(len(data.captions), image_views.shape[1], cfg.batch_size, cfg.seed)
+             if image_views is not None else None)
     autocast = torch.autocast(device_type=accelerator.device.type, dtype=torch.bfloat16,
                               enabled=cfg.precision == "bf16")
 
@@ -236,7 +243,8 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, console:
             batch = sampler.batch(step)  # (B,) global indices, identical on every rank
             mine = batch[rank * local_batch:(rank + 1) * local_batch]  # (b,) this rank's slice
             loss = contrastive_step(
-                model, tower, loss_fn, [data.captions[i] for i in mine.tolist()], feats[batch],
+                model, tower, loss_fn, [data.captions[i] for i in mine.tolist()],
+                feats[batch] if views is None else view_batch(image_views, batch, views.views_for(step, batch)),
                 data.caption_ids[batch], data.label_ids[batch] if data.label_ids is not None else None,
                 accelerator, autocast, chunk_size=cfg.chunk_size, length_buckets=cfg.length_buckets,
                 seed=step_seed(cfg.seed, step))
