@@ -47,3 +47,19 @@ TEXT_HEAD_README = "README.md"
 INDEX_INFO = "index.json"
 INDEX_EMBEDDINGS = "embeddings.npy"
 INDEX_KEYS = "keys.txt"
+
+# service home (align serve --home DIR)
+SERVICE_DB = "jobs.db"
+SERVICE_TOKEN = "token"  # mode 0600, made at first start
+SERVICE_SETTINGS = "service.json"  # the settings the running service started with (workers read them)
+SERVICE_LOCK = "service.lock"  # held by the one service using the home
+SERVICE_RUNS = "runs"  # one run folder per job: runs/job-000001
+SERVICE_EXPORTS = "exports"  # exports/<name>: what /exports/<name>/embed answers with
+SERVICE_INDEXES = "indexes"  # indexes/<name>: the gallery index /exports/<name>/search answers from
+SERVICE_RECIPES = "recipes"  # recipe files a job may name
+SERVICE_DATA = "data"  # the default data root
+SERVICE_FEATURES = "features"  # the frozen-feature cache of every job
+SERVICE_LOGS = "logs"
+SERVICE_LOCKS = "locks"  # one lock file per live worker process
+JOB_DIR_PATTERN = "job-{id:06d}"
+JOB_LOG = "job.log"  # inside a job's run folder: the console output of its attempts
