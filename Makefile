@@ -25,8 +25,10 @@ demo: $(STAMP)
 test: $(STAMP)
 	$(BIN)/python -m pytest -q
 
+# throughput (tools/bench.py, several minutes on 2 cores), then memory (tools/bench_memory.py) when present
 bench: $(STAMP)
 	$(BIN)/python tools/bench.py
+	@if [ -f tools/bench_memory.py ]; then $(BIN)/python tools/bench_memory.py; fi
 
 clean:
 	rm -rf runs features demo_work bench_out
