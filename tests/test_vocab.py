@@ -210,3 +210,66 @@ def test_vocab_command_json(tile_word_shards, tmp_path, capsys):
     assert base_stats["captions_with_split_term"] == 1.0  # every caption holds its class word
     assert report["tokenizers"]["extended"]["captions_with_split_term"] == 0.0
     assert main(["vocab", str(tmp_path)]) == 2  # not a packed folder: message and hint, no traceback
+
+
+def test_export_reloads_with_plain_transformers(extended_run, extended_export, base):
+    """Merged export, reloaded without align: new terms are single tokens, embeddings match training."""
+    import torch.nn.functional as F
+    from safetensors.torch import load_file
+    from transformers import AutoModel, AutoTokenizer
+
+    from align.train import load_trained
+
+    tokenizer, model = base
+    recipe, run_dir = extended_run
+    out = extended_export
+    weights = load_weights(latest_checkpoint(run_dir))
+    trained, _, _ = load_trained(run_dir, recipe, weights["text.projection.weight"].shape[0])
+
+    folder = out / A.EXPORT_TEXT_ENCODER
+    plain_tok = AutoTokenizer.from_pretrained(str(folder))
+    plain = AutoModel.from_pretrained(str(folder)).eval()
+    projection = load_file(str(folder / A.PROJECTION))["weight"]  # (D, H)
+    vocab = len(tokenizer)
+    for i, term in enumerate(TERMS):
+        ids = plain_tok(f"a {term} tile", add_special_tokens=False)["input_ids"]
+        assert len(ids) == 3 and ids[1] >= vocab, (term, ids)  # one new token for the term
+
+    # the merged matrix: old rows bit-identical to the base model, new rows the trained ones
+    with torch.no_grad():
+        trained_rows = trained.encoder.get_input_embeddings()(torch.arange(vocab + len(TERMS))[None])[0]
+    merged_rows = plain.get_input_embeddings().weight.detach()
+    assert merged_rows.shape == trained_rows.shape
+    assert torch.equal(merged_rows[:vocab], model.get_input_embeddings().weight.detach())
+    torch.testing.assert_close(merged_rows[vocab:], trained_rows[vocab:], rtol=0, atol=0)
+
+    captions = [TEMPLATES[i % 3].format(t=TERMS[i], d=DIGIT_WORDS[i]) for i in range(len(TERMS))] + ["a tile"]
+    batch = plain_tok(captions, padding=True, truncation=True, max_length=recipe.text.max_length, return_tensors="pt")
+    with torch.no_grad():
+        hidden = plain(**batch).last_hidden_state  # (B, T, H)
+    mask = batch["attention_mask"].unsqueeze(-1).float()
+    plain_emb = F.normalize(((hidden * mask).sum(1) / mask.sum(1)) @ projection.T, dim=-1)  # (B, D)
+    # the export's own contract allows 1e-4 between forms (LoRA folded into the weights reorders sums)
+    torch.testing.assert_close(plain_emb, trained.embed(captions), rtol=0, atol=1e-4)
+
+
+@pytest.fixture(scope="module")
+def extended_export(extended_run, tmp_path_factory):
+    from align.export import export_run
+
+    out = tmp_path_factory.mktemp("vocab-export") / "export"
+    export_run(extended_run[1], out, onnx=False)
+    return out
+
+
+# peft's save_pretrained(save_embedding_layers="auto") writes the whole resized matrix once the vocabulary
+# grew; export.write_adapter needs save_embedding_layers=False (checked by hand: only the (n, H) rows are
+# then stored and load_adapter_encoder reproduces the tower exactly). Remove this marker with that fix.
+@pytest.mark.xfail(strict=True, reason="align/export.py write_adapter saves the resized embedding matrix whole")
+def test_adapter_export_stores_only_the_new_rows(extended_export, base):
+    from safetensors.torch import load_file
+
+    _, model = base
+    adapter = load_file(str(extended_export / A.EXPORT_ADAPTER / "adapter_model.safetensors"))
+    shapes = {k: tuple(v.shape) for k, v in adapter.items() if "embed" in k or "token" in k}
+    assert list(shapes.values()) == [(len(TERMS), model.config.hidden_size)], shapes
