@@ -112,6 +112,47 @@ def cmd_query(args) -> int:
     return 0
 
 
+def cmd_serve(args) -> int:
+    from .service.app import serve
+    from .service.home import Settings, default_home
+    serve(Settings(home=args.home or default_home(), host=args.host, port=args.port, workers=args.workers,
+                   data_roots=args.data_root, max_body_bytes=args.max_body_bytes))
+    return 0
+
+
+def cmd_jobs(args) -> int:
+    import json
+
+    from .service import client as C
+    service = C.ServiceClient(args.url, C.find_token(args.token_file, args.home))
+    out = Console()
+    if args.jobs_command == "submit":
+        if (args.recipe is None) == (args.named is None):
+            raise AlignError("give a recipe file or --named NAME, one of them",
+                             "e.g. align jobs submit recipes/lora-cpu.toml --data DIR")
+        if args.recipe and not Path(args.recipe).is_file():
+            raise AlignError(f"no recipe at {args.recipe}", "pass a local TOML file, or --named NAME for one in HOME/recipes/")
+        job = service.submit(recipe_toml=Path(args.recipe).read_text(encoding="utf-8") if args.recipe else None,
+                             recipe_name=args.named, overrides=args.set, data=C.data_argument(args.data),
+                             name=args.name, export=args.export, export_onnx=args.onnx,
+                             index=C.data_argument(args.index))
+        console.print(f"queued job {job['id']} ({job['name']}); follow it with: align jobs show {job['id']}")
+        if args.wait:
+            job = service.wait(job["id"], console)
+            C.print_job(job, out)
+            return 0 if job["state"] == "finished" else 1
+    elif args.jobs_command == "list":
+        out.print(C.jobs_table(service.jobs(args.state)))
+    elif args.jobs_command == "show":
+        job = service.job(args.id)
+        print(json.dumps(job, indent=2)) if args.json else C.print_job(job, out)
+    elif args.jobs_command == "cancel":
+        job = service.cancel(args.id)
+        console.print(f"job {job['id']}: {job['state']}" + (" (stops at its next logged step)"
+                                                            if job["state"] == "running" else ""))
+    return 0
+
+
 def _add_recipe_args(p: argparse.ArgumentParser, required: bool = True) -> None:
     if required:
         p.add_argument("recipe", help="recipe TOML file, e.g. recipes/lora-cpu.toml")
@@ -192,6 +233,43 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--faiss", action="store_true", help="same as --backend faiss")
     p.add_argument("--export", help="the export to embed queries with (default: the one the index was built with)")
     p.set_defaults(func=cmd_query)
+
+    p = sub.add_parser("serve", help="the training service: an HTTP job queue, search endpoints and a status page")
+    p.add_argument("--host", default="127.0.0.1", help="address to bind (beyond loopback every call needs the token)")
+    p.add_argument("--port", type=int, default=8765, help="port to listen on")
+    p.add_argument("--home", default=None, help="service home: jobs.db, token, runs/, exports/, recipes/, data/ "
+                   "(default $ALIGN_HOME or ~/.align)")
+    p.add_argument("--data-root", action="append", default=[], metavar="DIR",
+                   help="a folder jobs may read data from (repeatable; HOME/data always counts)")
+    p.add_argument("--workers", type=int, default=1, help="jobs run at the same time (one worker process each)")
+    p.add_argument("--max-body-bytes", type=int, default=1 << 20, help="largest request body accepted")
+    p.set_defaults(func=cmd_serve)
+
+    p = sub.add_parser("jobs", help="submit, list, show or cancel jobs of a running align serve")
+    jobs = p.add_subparsers(dest="jobs_command", required=True, metavar="ACTION")
+    for name, text in (("submit", "queue a training job"), ("list", "the job list"), ("show", "one job in detail"),
+                       ("cancel", "cancel a queued or running job")):
+        q = jobs.add_parser(name, help=text)
+        q.add_argument("--url", default=None, help="the service (default $ALIGN_URL or http://127.0.0.1:8765)")
+        q.add_argument("--home", default=None, help="the service home, to read its token (default $ALIGN_HOME or ~/.align)")
+        q.add_argument("--token-file", default=None, help="read the token from this file (or set ALIGN_TOKEN)")
+        if name == "submit":
+            q.add_argument("recipe", nargs="?", help="a local recipe TOML file (its text is sent)")
+            q.add_argument("--named", help="instead: a recipe file in the service's HOME/recipes/")
+            q.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE", help="override (repeatable)")
+            q.add_argument("--data", help="packed data folder inside one of the service's data roots")
+            q.add_argument("--name", help="job name (default: the recipe's name)")
+            q.add_argument("--export", help="after training, export to HOME/exports/NAME (served by /exports/NAME)")
+            q.add_argument("--onnx", action="store_true", help="the export includes the ONNX text encoder")
+            q.add_argument("--index", help="with --export: index this gallery folder for /exports/NAME/search")
+            q.add_argument("--wait", action="store_true", help="follow the job until it ends")
+        elif name == "list":
+            q.add_argument("--state", choices=("queued", "running", "finished", "failed", "cancelled"))
+        else:
+            q.add_argument("id", type=int, help="job id")
+            if name == "show":
+                q.add_argument("--json", action="store_true", help="print the job as JSON")
+    p.set_defaults(func=cmd_jobs)
     return parser
 
 

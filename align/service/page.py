@@ -1,0 +1,194 @@
+"""The status page at ``/``: plain HTML and a little JavaScript, no build step, nothing from the network.
+
+It polls ``GET /jobs`` and each shown job's ``GET /jobs/<id>/metrics`` and draws, per job, the
+training loss against the step and recall@K both ways (once the job is evaluated) as inline SVG.
+Job text is put in with ``textContent``, never as HTML. When the service needs the token for
+reads, open the page as ``/?token=...``: the script sends it as a header and drops it from the
+address bar.
+"""
+from __future__ import annotations
+
+STATUS_PAGE = r"""<!doctype html>
+<html lang="en">
+<head>
+<meta charset="utf-8">
+<meta name="viewport" content="width=device-width, initial-scale=1">
+<title>align service</title>
+<style>
+  :root { --ink: #1d2330; --muted: #6b7383; --line: #d9dde5; --loss: #2f6fdf; --t2i: #d9534f; --i2t: #3a9d5d; }
+  body { font: 14px/1.45 system-ui, -apple-system, "Segoe UI", sans-serif; color: var(--ink); margin: 24px; background: #fafbfc; }
+  h1 { font-size: 20px; margin: 0 0 4px; }
+  #summary { color: var(--muted); margin-bottom: 16px; }
+  table { border-collapse: collapse; width: 100%; background: #fff; border: 1px solid var(--line); }
+  th, td { text-align: left; padding: 6px 10px; border-bottom: 1px solid var(--line); white-space: nowrap; }
+  th { background: #f1f3f7; font-weight: 600; }
+  td.num { text-align: right; font-variant-numeric: tabular-nums; }
+  .state { padding: 1px 8px; border-radius: 10px; font-size: 12px; font-weight: 600; }
+  .state-queued { background: #eef0f4; } .state-running { background: #dce8fd; color: #1b4fb0; }
+  .state-finished { background: #dcf3e4; color: #1d6b3a; } .state-failed { background: #fbe0df; color: #a12622; }
+  .state-cancelled { background: #f4eddc; color: #7a5a12; }
+  #charts { display: flex; flex-wrap: wrap; gap: 16px; margin-top: 18px; }
+  .job { background: #fff; border: 1px solid var(--line); border-radius: 6px; padding: 10px 12px; }
+  .job h2 { font-size: 15px; margin: 0 0 6px; }
+  .job .error { color: #a12622; max-width: 700px; white-space: pre-wrap; }
+  .job .charts { display: flex; gap: 10px; }
+  svg text { font-size: 11px; fill: var(--muted); }
+  svg .title { font-size: 12px; fill: var(--ink); font-weight: 600; }
+</style>
+</head>
+<body>
+<h1>align service</h1>
+<div id="summary">loading…</div>
+<table id="jobs">
+  <thead><tr><th>id</th><th>name</th><th>state</th><th>phase</th><th>step</th><th>loss</th><th>pairs/s</th>
+  <th>time left</th><th>R@1 text→image</th></tr></thead>
+  <tbody></tbody>
+</table>
+<div id="charts"></div>
+<script>
+"use strict";
+const params = new URLSearchParams(location.search);
+const token = params.get("token");
+if (token) { history.replaceState(null, "", location.pathname); }
+const headers = token ? { "Authorization": "Bearer " + token } : {};
+const SHOWN = 8;            // jobs drawn as charts (newest first)
+const NS = "http://www.w3.org/2000/svg";
+
+async function getJSON(url) {
+  const response = await fetch(url, { headers, cache: "no-store" });
+  if (!response.ok) { throw new Error(url + ": " + response.status); }
+  return response.json();
+}
+
+function el(tag, attrs, text) {
+  const node = document.createElement(tag);
+  for (const [k, v] of Object.entries(attrs || {})) { node.setAttribute(k, v); }
+  if (text !== undefined) { node.textContent = text; }
+  return node;
+}
+
+function svg(tag, attrs, text) {
+  const node = document.createElementNS(NS, tag);
+  for (const [k, v] of Object.entries(attrs || {})) { node.setAttribute(k, v); }
+  if (text !== undefined) { node.textContent = text; }
+  return node;
+}
+
+function fmt(value, digits) {
+  return (value === null || value === undefined) ? "–" : Number(value).toFixed(digits);
+}
+
+function duration(seconds) {
+  if (seconds === null || seconds === undefined) { return "–"; }
+  const s = Math.round(seconds);
+  return s >= 3600 ? Math.floor(s / 3600) + "h " + Math.floor((s % 3600) / 60) + "m"
+       : s >= 60 ? Math.floor(s / 60) + "m " + (s % 60) + "s" : s + "s";
+}
+
+// A line chart: series = [{name, color, points: [[x, y], ...]}]; xs drawn as given (numbers).
+function lineChart(kind, jobId, title, series, xLabel, yRange) {
+  const W = 340, H = 200, L = 44, R = 10, T = 22, B = 30;
+  const all = series.flatMap(s => s.points);
+  const root = svg("svg", { width: W, height: H, viewBox: `0 0 ${W} ${H}`, "data-chart": kind, "data-job": jobId,
+                            "data-points": all.length });
+  root.appendChild(svg("text", { x: L, y: 14, class: "title" }, title));
+  root.appendChild(svg("rect", { x: L, y: T, width: W - L - R, height: H - T - B, fill: "#fbfcfe", stroke: "#d9dde5" }));
+  if (!all.length) {
+    root.appendChild(svg("text", { x: L + 10, y: T + 40 }, kind === "recall" ? "appears once the job is evaluated"
+                                                                               : "no logged step yet"));
+    return root;
+  }
+  const xs = all.map(p => p[0]), ys = all.map(p => p[1]);
+  let [x0, x1] = [Math.min(...xs), Math.max(...xs)];
+  let [y0, y1] = yRange || [Math.min(...ys), Math.max(...ys)];
+  if (x1 === x0) { x1 = x0 + 1; }
+  if (y1 === y0) { y1 = y0 + 1; }
+  const px = x => L + (x - x0) / (x1 - x0) * (W - L - R);
+  const py = y => H - B - (y - y0) / (y1 - y0) * (H - T - B);
+  for (const y of [y0, (y0 + y1) / 2, y1]) {
+    root.appendChild(svg("line", { x1: L, x2: W - R, y1: py(y), y2: py(y), stroke: "#eceff4" }));
+    root.appendChild(svg("text", { x: L - 4, y: py(y) + 4, "text-anchor": "end" }, y.toFixed(y1 - y0 < 0.1 ? 3 : 2)));
+  }
+  root.appendChild(svg("text", { x: L, y: H - 8 }, String(x0)));
+  root.appendChild(svg("text", { x: W - R, y: H - 8, "text-anchor": "end" }, String(x1)));
+  root.appendChild(svg("text", { x: (L + W - R) / 2, y: H - 8, "text-anchor": "middle" }, xLabel));
+  series.forEach((s, i) => {
+    const pts = s.points.map(p => px(p[0]).toFixed(1) + "," + py(p[1]).toFixed(1)).join(" ");
+    root.appendChild(svg("polyline", { points: pts, fill: "none", stroke: s.color, "stroke-width": 2,
+                                       "data-series": s.name }));
+    for (const p of s.points) { root.appendChild(svg("circle", { cx: px(p[0]), cy: py(p[1]), r: 2.5, fill: s.color })); }
+    if (series.length > 1) {
+      root.appendChild(svg("text", { x: W - R - 4, y: T + 14 + 14 * i, "text-anchor": "end", style: "fill:" + s.color }, s.name));
+    }
+  });
+  return root;
+}
+
+function recallSeries(evaluation) {
+  const out = [];
+  for (const [direction, name, color] of [["text_to_image", "text→image", "#d9534f"],
+                                           ["image_to_text", "image→text", "#3a9d5d"]]) {
+    const points = [];
+    for (const [key, value] of Object.entries(evaluation || {})) {
+      const m = key.match(new RegExp("^" + direction + "_recall@(\\d+)$"));
+      if (m) { points.push([Number(m[1]), value]); }
+    }
+    points.sort((a, b) => a[0] - b[0]);
+    if (points.length) { out.push({ name, color, points }); }
+  }
+  return out;
+}
+
+function jobRow(job) {
+  const row = el("tr", { "data-job": job.id, "data-state": job.state });
+  const state = el("span", { class: "state state-" + job.state },
+                   job.state + (job.cancel_requested && job.state === "running" ? " (cancelling)" : ""));
+  const cells = [String(job.id), job.name, state, job.state === "running" ? (job.phase || "–") : "–", job.step + " / " + job.steps,
+                 fmt(job.loss, 3), fmt(job.pairs_per_s, 0), duration(job.eta_s),
+                 fmt(job.metrics ? job.metrics["text_to_image_recall@1"] : null, 3)];
+  cells.forEach((cell, i) => {
+    const td = el("td", i >= 4 ? { class: "num" } : {});
+    if (typeof cell === "string") { td.textContent = cell; } else { td.appendChild(cell); }
+    row.appendChild(td);
+  });
+  return row;
+}
+
+async function jobCard(job) {
+  const card = el("div", { class: "job", id: "job-" + job.id });
+  card.appendChild(el("h2", {}, "#" + job.id + " " + job.name + " — " + job.state));
+  if (job.error) {
+    card.appendChild(el("div", { class: "error" }, job.error.message + (job.error.hint ? "\nhint: " + job.error.hint : "")));
+  }
+  const stream = await getJSON("/jobs/" + job.id + "/metrics");
+  const loss = stream.records.map(r => [r.step, r.loss]);
+  const charts = el("div", { class: "charts" });
+  charts.appendChild(lineChart("loss", job.id, "training loss", [{ name: "loss", color: "#2f6fdf", points: loss }], "step"));
+  charts.appendChild(lineChart("recall", job.id, "recall@K (held-out split)", recallSeries(stream.evaluation), "K", [0, 1]));
+  card.appendChild(charts);
+  return card;
+}
+
+async function refresh() {
+  try {
+    const { jobs } = await getJSON("/jobs");
+    const body = document.querySelector("#jobs tbody");
+    body.replaceChildren(...jobs.map(jobRow));
+    const counts = {};
+    for (const job of jobs) { counts[job.state] = (counts[job.state] || 0) + 1; }
+    document.getElementById("summary").textContent = jobs.length + " job(s): " +
+      (Object.entries(counts).map(([k, v]) => v + " " + k).join(", ") || "none yet") +
+      " · updated " + new Date().toLocaleTimeString();
+    const cards = await Promise.all(jobs.slice(0, SHOWN).map(jobCard));
+    document.getElementById("charts").replaceChildren(...cards);
+  } catch (err) {
+    document.getElementById("summary").textContent = "cannot reach the service: " + err.message;
+  }
+}
+
+refresh();
+setInterval(refresh, 3000);
+</script>
+</body>
+</html>
+"""

@@ -1,0 +1,113 @@
+"""Exports and gallery indexes, loaded once, answering ``/exports/<name>/embed`` and ``/search``.
+
+An export is HOME/exports/<name> (written by a job with ``export``, or by ``align export``); its
+gallery index, when there is one, is HOME/indexes/<name>. A loaded export is reused until its
+export.json changes (a new export of the same name swaps the folder in whole). Calls on one
+export take turns on its text encoder: its fast tokenizer is not safe to share between threads,
+and on a CPU two encodes at once are no faster than one after the other.
+"""
+from __future__ import annotations
+
+import threading
+import time
+from collections import OrderedDict
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from .. import artifacts as A
+from ..errors import AlignError
+from .home import Home
+from .security import PathRefused, check_name
+
+MAX_LOADED = 4  # exports kept in memory at once (a MiniLM-sized text side is ~100 MB)
+
+
+class NotFound(AlignError):
+    """No such export or index."""
+
+
+@dataclass
+class LoadedExport:
+    name: str
+    stamp: tuple
+    model: object  # align.api.AlignedModel, text side only
+    lock: threading.Lock = field(default_factory=threading.Lock)
+    index: object | None = None  # align.index.GalleryIndex
+    index_stamp: tuple | None = None
+
+
+def _stamp(path: Path) -> tuple:
+    st = path.stat()
+    return (st.st_ino, st.st_mtime_ns, st.st_size)
+
+
+class ExportCache:
+    def __init__(self, home: Home, max_loaded: int = MAX_LOADED):
+        self.home = home
+        self.max_loaded = max_loaded
+        self._lock = threading.Lock()
+        self._loaded: OrderedDict[str, LoadedExport] = OrderedDict()
+
+    def _folder(self, root: Path, name: str, what: str) -> Path:
+        check_name(name, f"{what} name")
+        folder = root / name
+        if not folder.is_dir():
+            raise NotFound(f"no {what} named {name!r}", f"list them with GET /exports; a job with export={name!r} makes one")
+        real, real_root = folder.resolve(), root.resolve()
+        if not real.is_relative_to(real_root):  # a symlink placed in the folder, pointing elsewhere
+            raise PathRefused(f"{what} {name!r} points outside {root}")
+        return real
+
+    def names(self) -> list[dict]:
+        out = []
+        for folder in sorted(self.home.exports.iterdir()) if self.home.exports.is_dir() else []:
+            if folder.is_dir() and not folder.name.startswith(".") and (folder / A.EXPORT_INFO).is_file():
+                out.append({"name": folder.name, "has_index": (self.home.indexes / folder.name / A.INDEX_INFO).is_file()})
+        return out
+
+    def get(self, name: str) -> LoadedExport:
+        folder = self._folder(self.home.exports, name, "export")
+        info = folder / A.EXPORT_INFO
+        if not info.is_file():
+            raise NotFound(f"export {name!r} is not complete (no {A.EXPORT_INFO})", "wait for its job to finish")
+        stamp = _stamp(info)
+        with self._lock:
+            entry = self._loaded.get(name)
+            if entry is None or entry.stamp != stamp:
+                from ..api import load
+
+                entry = LoadedExport(name, stamp, load(folder, image_tower=False))  # text side only
+                self._loaded[name] = entry
+                while len(self._loaded) > self.max_loaded:
+                    self._loaded.popitem(last=False)
+            self._loaded.move_to_end(name)
+            return entry
+
+    def embed(self, name: str, texts: list[str]) -> tuple[np.ndarray, LoadedExport]:
+        entry = self.get(name)
+        with entry.lock:
+            return entry.model.embed_text(texts), entry  # (N, D)
+
+    def search(self, name: str, texts: list[str], k: int, backend: str = "auto") -> dict:
+        from ..api import check_image_side_matches
+        from ..index import load_index
+
+        entry = self.get(name)
+        folder = self._folder(self.home.indexes, name, "index")
+        info = folder / A.INDEX_INFO
+        if not info.is_file():
+            raise NotFound(f"index {name!r} is not complete", "wait for the job that builds it to finish")
+        started = time.perf_counter()
+        with entry.lock:
+            if entry.index is None or entry.index_stamp != _stamp(info):
+                index = load_index(folder)
+                # a gallery embedded by another tower than the export's would answer nonsense
+                check_image_side_matches(entry.model.export_dir, index.info["image_fingerprint"])
+                entry.index, entry.index_stamp = index, _stamp(info)
+            queries = entry.model.embed_text(texts)  # (Q, D)
+            results, used = entry.index.search(queries, k, backend)
+        return {"export": name, "backend": used, "gallery_size": len(entry.index),
+                "elapsed_ms": round(1000 * (time.perf_counter() - started), 2),
+                "queries": [{"text": t, "results": r} for t, r in zip(texts, results)]}

@@ -1,0 +1,162 @@
+"""Security by default: the token, the Host check, the body limit and path confinement.
+
+``Guard`` is a plain ASGI middleware in front of every route, so no route can forget a check:
+
+- a mutating call (anything but GET/HEAD/OPTIONS) needs ``Authorization: Bearer <token>``; when
+  the service is bound beyond loopback, every call does (a GET may carry ``?token=`` instead, so
+  the status page and downloads open in a browser);
+- bound to loopback, the Host header must name loopback (a web page that rebinds its own domain
+  name to 127.0.0.1 cannot read the API through the browser);
+- a body over the limit is refused before any route sees it (it is read into memory by the guard,
+  at most ``max_body`` bytes, then replayed to the route).
+
+``confine`` resolves a path from a request (symlinks followed) and refuses it unless it lies inside
+one of the configured roots. Nothing from a request is ever handed to a shell: the service starts
+its workers with a fixed argument list and passes jobs through the store.
+"""
+from __future__ import annotations
+
+import hmac
+import json
+import re
+from pathlib import Path
+from urllib.parse import parse_qs
+
+from ..errors import AlignError
+
+SAFE_METHODS = ("GET", "HEAD", "OPTIONS")
+LOOPBACK_NAMES = ("127.0.0.1", "localhost", "::1", "[::1]")
+NAME_PATTERN = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")
+
+
+class PathRefused(AlignError):
+    """A path from a request points outside the configured roots."""
+
+
+def check_name(name: str, what: str) -> str:
+    """A plain file or folder name: letters, digits, ``.``, ``_``, ``-``; no separators, no ``..``."""
+    if not isinstance(name, str) or not NAME_PATTERN.match(name) or ".." in name:
+        raise PathRefused(f"{what} {name!r} is not a plain name",
+                          "use 1-64 letters, digits, '.', '_' or '-', starting with a letter or digit")
+    return name
+
+
+def confine(raw: str, roots: list[Path], what: str, base: Path | None = None) -> Path:
+    """The resolved path of ``raw`` when it lies inside one of ``roots``; PathRefused otherwise.
+
+    ``..`` is refused outright (even when it would land inside a root), and symlinks are followed
+    before the check, so a link inside a root that points outside it is refused as well. A
+    relative path is taken relative to ``base`` (default: the first root). The path must exist.
+    """
+    roots_hint = "allowed roots: " + ", ".join(str(r) for r in roots)
+    if not isinstance(raw, str) or not raw or "\x00" in raw:
+        raise PathRefused(f"{what} must be a non-empty path", roots_hint)
+    path = Path(raw)
+    if ".." in path.parts:
+        raise PathRefused(f"{what} {raw!r} contains '..'", "give the path without '..'; " + roots_hint)
+    if not path.is_absolute():
+        path = (base or roots[0]) / path
+    try:
+        resolved = path.resolve(strict=True)
+    except (OSError, RuntimeError):  # missing, or a symlink loop
+        if any(_inside(path.absolute(), r) for r in roots):
+            raise PathRefused(f"{what} {raw!r} does not exist", roots_hint) from None
+        raise PathRefused(f"{what} {raw!r} is outside the allowed roots", roots_hint) from None
+    for root in roots:
+        if _inside(resolved, root.resolve()):
+            return resolved
+    raise PathRefused(f"{what} {raw!r} is outside the allowed roots (it resolves to {resolved})", roots_hint)
+
+
+def _inside(path: Path, root: Path) -> bool:
+    return path == root or path.is_relative_to(root)
+
+
+def token_matches(expected: str, given: str | None) -> bool:
+    # constant-time comparison: the time taken does not tell how much of a guess was right
+    return given is not None and hmac.compare_digest(expected.encode(), given.encode())
+
+
+class Guard:
+    """ASGI middleware: Host check, token check and body limit, before any route runs."""
+
+    def __init__(self, app, *, token: str, token_for_reads: bool, check_host: bool, max_body: int):
+        self.app = app
+        self.token = token
+        self.token_for_reads = token_for_reads
+        self.check_host = check_host
+        self.max_body = max_body
+
+    async def __call__(self, scope, receive, send):
+        if scope["type"] != "http":
+            return await self.app(scope, receive, send)
+        method = scope["method"].upper()
+        headers = {k.decode("latin-1").lower(): v.decode("latin-1") for k, v in scope.get("headers", [])}
+
+        if self.check_host and _host_name(headers.get("host", "")) not in LOOPBACK_NAMES:
+            return await _refuse(send, 403, "the Host header does not name this machine's loopback",
+                                 "call the service as http://127.0.0.1:PORT")
+        needs_token = method not in SAFE_METHODS or self.token_for_reads
+        if needs_token and not token_matches(self.token, _given_token(headers, scope, method)):
+            return await _refuse(send, 401, "this call needs the service token",
+                                 "send the header 'Authorization: Bearer <token>'; the token is in HOME/token "
+                                 "(align jobs reads it from there)", {"www-authenticate": "Bearer"})
+
+        declared = headers.get("content-length")
+        if declared is not None:
+            if not declared.isdigit():
+                return await _refuse(send, 400, "the Content-Length header is not a number")
+            if int(declared) > self.max_body:
+                return await _refuse(send, 413, f"the request body is {declared} bytes; the limit is {self.max_body}",
+                                     "send less per call (the limit is align serve --max-body-bytes)")
+        if method in SAFE_METHODS:
+            return await self.app(scope, receive, send)
+
+        # Read the body here, bounded, so a chunked body without a length cannot get past the limit.
+        body = bytearray()
+        while True:
+            message = await receive()
+            if message["type"] == "http.disconnect":
+                return
+            body += message.get("body", b"")
+            if len(body) > self.max_body:
+                return await _refuse(send, 413, f"the request body is over the limit of {self.max_body} bytes",
+                                     "send less per call (the limit is align serve --max-body-bytes)")
+            if not message.get("more_body", False):
+                break
+        replayed = False
+
+        async def replay():
+            nonlocal replayed
+            if not replayed:
+                replayed = True
+                return {"type": "http.request", "body": bytes(body), "more_body": False}
+            return await receive()
+
+        return await self.app(scope, replay, send)
+
+
+def _host_name(host: str) -> str:
+    if host.startswith("["):  # [::1]:8765
+        return host.split("]")[0] + "]"
+    return host.rsplit(":", 1)[0] if host.count(":") == 1 else host
+
+
+def _given_token(headers: dict, scope, method: str) -> str | None:
+    auth = headers.get("authorization", "")
+    if auth.lower().startswith("bearer "):
+        return auth[7:].strip()
+    if method in ("GET", "HEAD"):
+        values = parse_qs(scope.get("query_string", b"").decode("latin-1")).get("token")
+        if values:
+            return values[0]
+    return None
+
+
+async def _refuse(send, status: int, message: str, hint: str | None = None, extra: dict | None = None) -> None:
+    body = json.dumps({"error": message, "hint": hint}).encode()
+    headers = [(b"content-type", b"application/json"), (b"content-length", str(len(body)).encode()),
+               (b"connection", b"close")]
+    headers += [(k.encode(), v.encode()) for k, v in (extra or {}).items()]
+    await send({"type": "http.response.start", "status": status, "headers": headers})
+    await send({"type": "http.response.body", "body": body})
