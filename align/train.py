@@ -178,7 +178,7 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, console:
 
     # Phase 1: the process group and the run folder. The resolved recipe sits beside every
     # checkpoint, so a run can always be evaluated, resumed or exported with exactly what trained it.
-    accelerator = _accelerator()
+    accelerator = _accelerator(find_unused_parameters=recipe.text.kind == "full")
     # processes sharing a machine share its cores; more threads than cores only thrash
     torch.set_num_threads(cfg.threads or max(1, (os.cpu_count() or 1) // _local_world_size()))
     is_main = accelerator.is_main_process
@@ -286,18 +286,19 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, console:
             "tower_fingerprint": data.tower_fingerprint}
 
 
-def _accelerator():
+def _accelerator(find_unused_parameters: bool = False):
     """Accelerate's Accelerator: one process, or one rank of a torchrun / accelerate launch group.
 
     On CPU under a launcher, accelerate starts a gloo group itself (MULTI_CPU); on GPUs, NCCL.
     find_unused_parameters: a full fine-tune keeps the encoder's pooler trainable although the tower
-    pools its own way, and DDP would otherwise wait forever for the pooler's gradient.
+    pools its own way, and DDP would otherwise wait forever for the pooler's gradient; the check
+    costs a walk of the autograd graph per backward, so only kind = "full" pays it.
     """
     from accelerate import Accelerator
     from accelerate.utils import DistributedDataParallelKwargs
 
     return Accelerator(cpu=not torch.cuda.is_available(),
-                       kwargs_handlers=[DistributedDataParallelKwargs(find_unused_parameters=True)])
+                       kwargs_handlers=[DistributedDataParallelKwargs(find_unused_parameters=find_unused_parameters)])
 
 
 def _local_world_size() -> int:
