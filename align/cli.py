@@ -126,6 +126,7 @@ def cmd_jobs(args) -> int:
     from .service import client as C
     service = C.ServiceClient(args.url, C.find_token(args.token_file, args.home))
     out = Console()
+    out = out if out.is_terminal else Console(width=160)  # piped: keep a table's rows on one line each
     if args.jobs_command == "submit":
         if (args.recipe is None) == (args.named is None):
             raise AlignError("give a recipe file or --named NAME, one of them",
@@ -142,7 +143,8 @@ def cmd_jobs(args) -> int:
             C.print_job(job, out)
             return 0 if job["state"] == "finished" else 1
     elif args.jobs_command == "list":
-        out.print(C.jobs_table(service.jobs(args.state)))
+        jobs = service.jobs(args.state)
+        print(json.dumps(jobs, indent=2)) if args.json else out.print(C.jobs_table(jobs))
     elif args.jobs_command == "show":
         job = service.job(args.id)
         print(json.dumps(job, indent=2)) if args.json else C.print_job(job, out)
@@ -265,6 +267,7 @@ def build_parser() -> argparse.ArgumentParser:
             q.add_argument("--wait", action="store_true", help="follow the job until it ends")
         elif name == "list":
             q.add_argument("--state", choices=("queued", "running", "finished", "failed", "cancelled"))
+            q.add_argument("--json", action="store_true", help="print the jobs as JSON")
         else:
             q.add_argument("id", type=int, help="job id")
             if name == "show":

@@ -3,8 +3,9 @@
 An export is HOME/exports/<name> (written by a job with ``export``, or by ``align export``); its
 gallery index, when there is one, is HOME/indexes/<name>. A loaded export is reused until its
 export.json changes (a new export of the same name swaps the folder in whole). Calls on one
-export take turns on its text encoder: its fast tokenizer is not safe to share between threads,
-and on a CPU two encodes at once are no faster than one after the other.
+export take turns on its text encoder (its fast tokenizer is not safe to share between threads,
+and on a CPU two encodes at once are no faster than one after the other), and embed calls that
+arrive together are answered by one batched pass (``Batcher``).
 """
 from __future__ import annotations
 
@@ -28,6 +29,55 @@ class NotFound(AlignError):
     """No such export or index."""
 
 
+class Batcher:
+    """Concurrent embed calls on one export share forward passes.
+
+    The first caller to find the encoder idle becomes the leader: it embeds every text waiting at
+    that moment in one go, hands each caller its rows, and repeats until no one waits. Fifty
+    callers at once cost a few batched passes instead of fifty small ones. Padding to a longer
+    neighbour changes no result beyond float noise (mean pooling is over the attention mask).
+    """
+
+    def __init__(self, embed_many):
+        self._embed_many = embed_many
+        self._lock = threading.Lock()
+        self._waiting: list[tuple[list[str], dict]] = []
+        self._busy = False
+
+    def embed(self, texts: list[str]) -> np.ndarray:
+        slot: dict = {"done": threading.Event()}
+        with self._lock:
+            self._waiting.append((texts, slot))
+            lead = not self._busy
+            self._busy = True
+        if lead:
+            self._drain()
+        slot["done"].wait()
+        if "error" in slot:
+            raise slot["error"]
+        return slot["rows"]
+
+    def _drain(self) -> None:
+        while True:
+            with self._lock:
+                batch, self._waiting = self._waiting, []
+                if not batch:
+                    self._busy = False
+                    return
+            try:
+                rows = self._embed_many([t for texts, _ in batch for t in texts])  # (sum N, D)
+            except Exception as exc:  # noqa: BLE001 - every caller of the batch hears of it
+                for _, slot in batch:
+                    slot["error"] = exc
+                    slot["done"].set()
+                continue
+            start = 0
+            for texts, slot in batch:
+                slot["rows"] = rows[start:start + len(texts)]
+                start += len(texts)
+                slot["done"].set()
+
+
 @dataclass
 class LoadedExport:
     name: str
@@ -36,6 +86,14 @@ class LoadedExport:
     lock: threading.Lock = field(default_factory=threading.Lock)
     index: object | None = None  # align.index.GalleryIndex
     index_stamp: tuple | None = None
+    batcher: Batcher | None = None
+
+    def __post_init__(self):
+        self.batcher = Batcher(self._embed_locked)
+
+    def _embed_locked(self, texts: list[str]) -> np.ndarray:
+        with self.lock:
+            return self.model.embed_text(texts)
 
 
 def _stamp(path: Path) -> tuple:
@@ -87,8 +145,7 @@ class ExportCache:
 
     def embed(self, name: str, texts: list[str]) -> tuple[np.ndarray, LoadedExport]:
         entry = self.get(name)
-        with entry.lock:
-            return entry.model.embed_text(texts), entry  # (N, D)
+        return entry.batcher.embed(texts), entry  # (N, D)
 
     def search(self, name: str, texts: list[str], k: int, backend: str = "auto") -> dict:
         from ..api import check_image_side_matches

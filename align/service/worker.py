@@ -166,22 +166,25 @@ def _attempt(job: dict, store: JobStore, settings: Settings, stop: threading.Eve
             return _stopped(store, job_id, why.get("reason") or "stop", summary["steps"])
         done = recipe.train.steps
 
-    for phase in ("evaluate", "export", "index"):
+    # After training: evaluate, then the export and gallery index the job asked for. A cancel or a
+    # stop is honoured between phases (a phase itself runs to its end).
+    phases = ["evaluate"] + (["export"] if spec.get("export") else []) + (["index"] if spec.get("index") else [])
+    metrics = None
+    for phase in phases:
         reason = should_stop()
         if reason:
             return _stopped(store, job_id, reason, done)
+        store.set_phase(job_id, phase)
         if phase == "evaluate":
-            store.set_phase(job_id, phase)
-            metrics = evaluate_run(run_dir, console=console)
-        elif phase == "export" and spec.get("export"):
+            evaluate_run(run_dir, console=console)
+            metrics = json.loads((run_dir / A.METRICS).read_text(encoding="utf-8"))  # as written, checkpoint included
+        elif phase == "export":
             from ..export import export_run
 
-            store.set_phase(job_id, phase)
             export_run(run_dir, home.exports / spec["export"], onnx=bool(spec.get("export_onnx")), console=console)
-        elif phase == "index" and spec.get("index"):
+        else:
             from ..index import build_index
 
-            store.set_phase(job_id, phase)
             build_index(home.exports / spec["export"], spec["index"], home.indexes / spec["export"], console=console)
     store.finish(job_id, metrics)
     return "finished"
