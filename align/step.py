@@ -20,6 +20,13 @@ first pass and the re-encode draw identical masks, the outer RNG stream is left 
 draw does not depend on which process holds the chunk. (A global batch cut into the same chunks on
 one process or on several therefore sees the same dropout; the multi-process test relies on it.)
 
+Host memory. glibc's malloc raises its mmap threshold each time a large block is freed (up to
+32 MiB), after which activation-sized tensors come from the heap, and a heap fragmented by chunks
+of changing shapes is not handed back: measured on a LoRA step at global batch 1,024 in chunks of
+256, peak RSS 4.8 GiB with the default against 2.8 GiB with the threshold fixed at 1 MiB, for
+about the same step time (152 s against 149 s on a busy machine). So on CPU the first step fixes it at 1 MiB (``mallopt``), unless the user set
+``MALLOC_MMAP_THRESHOLD_`` themselves.
+
 Length buckets. With ``length_buckets`` the slice is sorted by token count (stable) before it is cut
 into chunks, and each chunk is trimmed to its own longest caption, so little compute goes to padding.
 Padding is masked out of attention and pooling, so the embeddings do not depend on it; results
@@ -27,7 +34,10 @@ are put back in the original order before the loss sees them.
 """
 from __future__ import annotations
 
+import ctypes
 import hashlib
+import os
+import sys
 from contextlib import contextmanager, nullcontext
 
 import torch
@@ -61,6 +71,26 @@ def seeded_rng(device: torch.device, seed: int):
     with torch.random.fork_rng(devices=devices, device_type="cuda"):
         torch.manual_seed(seed)
         yield
+
+
+_M_MMAP_THRESHOLD = -3  # glibc mallopt parameter number (malloc.h)
+_allocator_checked = False
+
+
+def bound_host_allocator(threshold: int = 1 << 20) -> bool:
+    """Serve blocks of ``threshold`` bytes and more by mmap, so freed activations go back to the
+    system at once (see "Host memory" above). Once per process; True when glibc took the setting."""
+    global _allocator_checked
+    if _allocator_checked:
+        return False
+    _allocator_checked = True
+    if not sys.platform.startswith("linux") or "MALLOC_MMAP_THRESHOLD_" in os.environ:
+        return False
+    try:
+        libc = ctypes.CDLL("libc.so.6")
+        return bool(libc.mallopt(_M_MMAP_THRESHOLD, ctypes.c_int(threshold)))
+    except (OSError, AttributeError):  # not glibc (musl, ...): leave its allocator alone
+        return False
 
 
 def plan_chunks(attention_mask: torch.Tensor, chunk_size: int, length_buckets: bool) -> list[torch.Tensor]:
@@ -103,6 +133,8 @@ def contrastive_step(model: torch.nn.Module, tower: TextTower, loss_fn: torch.nn
     current torch RNG. Gradients are accumulated into the parameters' ``.grad``.
     """
     device = accelerator.device
+    if device.type == "cpu":
+        bound_host_allocator()
     world, rank = accelerator.num_processes, accelerator.process_index
     if seed is None:
         seed = int(torch.randint(0, 2 ** 62, (1,)))
