@@ -34,8 +34,9 @@ def cmd_train(args) -> int:
     recipe = _recipe(args)
     run_dir = Path(args.run_dir or Path("runs") / recipe.name)
     summary = train(recipe, run_dir, resume=args.resume, console=console)
-    console.print(f"[green]trained[/green] {summary['steps']} steps in {summary['elapsed_s']:.0f}s "
-                  f"({summary['pairs_per_s'] or 0:.0f} pairs/s); run folder: {run_dir}")
+    if os.environ.get("RANK", "0") == "0":  # under torchrun / accelerate launch, one summary, not one per process
+        console.print(f"[green]trained[/green] {summary['steps']} steps in {summary['elapsed_s']:.0f}s "
+                      f"({summary['pairs_per_s'] or 0:.0f} pairs/s); run folder: {run_dir}")
     return 0
 
 
