@@ -18,7 +18,10 @@ REPO = Path(__file__).resolve().parent.parent
 def test_quick_bench_prints_its_figures_as_json(tmp_path):
     out = tmp_path / "bench"
     env = dict(os.environ, PYTHONPATH=str(REPO))
-    done = subprocess.run([sys.executable, str(REPO / "tools" / "bench.py"), "--quick", "--json", "--out", str(out)],
+    # one thread: while other tests share the cores, two OpenMP threads per process were measured
+    # running several times slower than one (they wait on each other at every parallel region)
+    done = subprocess.run([sys.executable, str(REPO / "tools" / "bench.py"), "--quick", "--json", "--threads", "1",
+                           "--out", str(out)],
                           env=env, capture_output=True, text=True, timeout=900)
     assert done.returncode == 0, done.stderr[-3000:]
     result = json.loads(done.stdout.strip().splitlines()[-1])  # the last stdout line is the JSON object
