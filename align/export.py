@@ -223,6 +223,17 @@ def export_onnx(encoder_dir: Path, path: Path) -> None:
                           dynamic_axes=dynamic, opset_version=ONNX_OPSET, do_constant_folding=True, dynamo=False)
 
 
+def _run_captions(recipe, count: int = 16) -> list[list[str]]:
+    """A batch of the run's own captions (its domain words, any added terms), when the data is still there."""
+    from .data.shards import load_table
+
+    try:
+        table = load_table(recipe.data.shards, recipe.data.eval_split)
+    except AlignError:
+        return []
+    return [table.captions[:count]] if table.captions else []
+
+
 def check_tokenizer(tokenizer, captions: list[list[str]], batches: list[dict]) -> None:
     """The saved tokenizer, called the plain way (truncation=True), must give the tower's token ids."""
     for texts, batch in zip(captions, batches):
@@ -371,7 +382,7 @@ def export_run(run_dir: str | Path, out: str | Path, *, checkpoint: str | Path |
             # The merged encoder, reloaded from disk with plain transformers, must equal the trained tower.
             phase(steps[3])
             merged, tokenizer, _ = load_text_encoder(temp / A.EXPORT_TEXT_ENCODER)
-            captions = [list(b) for b in PROBE_CAPTIONS]
+            captions = [list(b) for b in PROBE_CAPTIONS] + _run_captions(recipe)
             batches = [tower.tokenize(c) for c in captions]
             check_tokenizer(tokenizer, captions, batches)
             reference = _runner(tower)
