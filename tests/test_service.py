@@ -205,17 +205,17 @@ def _reference_embed(export_dir, texts):
     tokenizer = AutoTokenizer.from_pretrained(str(folder), local_files_only=True)
     model = AutoModel.from_pretrained(str(folder), local_files_only=True).eval()
     weight = load_file(str(folder / "projection.safetensors"))["weight"].astype(np.float64)  # (D, H)
-    out = []
-    for group in texts:
-        enc = tokenizer(group, padding=True, truncation=True, max_length=head["max_length"], return_tensors="pt")
-        with torch.no_grad():
-            hidden = model(input_ids=enc["input_ids"], attention_mask=enc["attention_mask"]).last_hidden_state
-        hidden = hidden.numpy().astype(np.float64)  # (B, T, H)
-        mask = enc["attention_mask"].numpy()[..., None].astype(np.float64)  # (B, T, 1)
-        pooled = (hidden * mask).sum(1) / mask.sum(1)  # (B, H)
-        projected = pooled @ weight.T  # (B, D)
-        out.append(projected / np.linalg.norm(projected, axis=1, keepdims=True))
-    return out
+    flat = [t for group in texts for t in group]  # one padded batch: padding moves nothing past float noise
+    enc = tokenizer(flat, padding=True, truncation=True, max_length=head["max_length"], return_tensors="pt")
+    with torch.no_grad():
+        hidden = model(input_ids=enc["input_ids"], attention_mask=enc["attention_mask"]).last_hidden_state
+    hidden = hidden.numpy().astype(np.float64)  # (B, T, H)
+    mask = enc["attention_mask"].numpy()[..., None].astype(np.float64)  # (B, T, 1)
+    pooled = (hidden * mask).sum(1) / mask.sum(1)  # (B, H)
+    projected = pooled @ weight.T  # (B, D)
+    unit = projected / np.linalg.norm(projected, axis=1, keepdims=True)
+    bounds = np.cumsum([0] + [len(group) for group in texts])
+    return [unit[a:b] for a, b in zip(bounds[:-1], bounds[1:])]
 
 
 WORDS = ["zero", "one", "two", "three", "four", "five", "six", "seven", "eight", "nine"]
