@@ -262,14 +262,24 @@ def extended_export(extended_run, tmp_path_factory):
     return out
 
 
-# peft's save_pretrained(save_embedding_layers="auto") writes the whole resized matrix once the vocabulary
-# grew; export.write_adapter needs save_embedding_layers=False (checked by hand: only the (n, H) rows are
-# then stored and load_adapter_encoder reproduces the tower exactly). Remove this marker with that fix.
-@pytest.mark.xfail(strict=True, reason="align/export.py write_adapter saves the resized embedding matrix whole")
-def test_adapter_export_stores_only_the_new_rows(extended_export, base):
+def test_adapter_export_stores_only_the_new_rows(extended_export, base, extended_run):
+    """The adapter holds the (n, H) new rows, not the resized matrix, and still rebuilds the tower."""
     from safetensors.torch import load_file
+
+    from align.api import load_adapter_encoder
+    from align.train import load_trained
 
     _, model = base
     adapter = load_file(str(extended_export / A.EXPORT_ADAPTER / "adapter_model.safetensors"))
     shapes = {k: tuple(v.shape) for k, v in adapter.items() if "embed" in k or "token" in k}
     assert list(shapes.values()) == [(len(TERMS), model.config.hidden_size)], shapes
+
+    recipe, run_dir = extended_run
+    weights = load_weights(latest_checkpoint(run_dir))
+    trained, _, _ = load_trained(run_dir, recipe, weights["text.projection.weight"].shape[0])
+    rebuilt, tokenizer, _ = load_adapter_encoder(extended_export / A.EXPORT_ADAPTER)
+    captions = ["a zellige tile with a handwritten two", "celadon glaze, the digit three", "a tile"]
+    batch = tokenizer(captions, padding=True, truncation=True, return_tensors="pt")
+    with torch.no_grad():
+        torch.testing.assert_close(rebuilt(batch["input_ids"], batch["attention_mask"]),
+                                   trained(batch["input_ids"], batch["attention_mask"]), rtol=0, atol=1e-5)
