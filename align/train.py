@@ -118,9 +118,12 @@ def warmup_cosine(warmup: int, total: int) -> Callable[[int], float]:
 
 
 def param_groups(named: list[tuple[str, torch.nn.Parameter]], weight_decay: float) -> list[dict]:
-    # no decay on biases, norms, embeddings of scale/temperature (common practice)
-    decay = [p for n, p in named if p.ndim >= 2]
-    no_decay = [p for n, p in named if p.ndim < 2]
+    # no decay on biases, norms and the loss's scale/temperature (common practice), nor on rows of
+    # added vocabulary: decay would pull them from their mean-of-pieces start towards zero
+    def decays(name: str, p: torch.nn.Parameter) -> bool:
+        return p.ndim >= 2 and "trainable_tokens" not in name
+    decay = [p for n, p in named if decays(n, p)]
+    no_decay = [p for n, p in named if not decays(n, p)]
     return [{"params": decay, "weight_decay": weight_decay}, {"params": no_decay, "weight_decay": 0.0}]
 
 
