@@ -207,8 +207,9 @@ def create_app(settings: Settings, token: str, start_workers: bool = True) -> Fa
     def embed(name: str, request: EmbedRequest):
         _check_texts(request.texts)
         vectors, entry = exports.embed(name, request.texts)
-        return {"export": name, "dim": int(vectors.shape[1]), "count": int(vectors.shape[0]),
-                "embeddings": vectors.astype(float).tolist()}
+        # straight to JSON: FastAPI's generic encoder walks every float one by one (~10x slower)
+        return JSONResponse({"export": name, "dim": int(vectors.shape[1]), "count": int(vectors.shape[0]),
+                             "embeddings": vectors.astype(float).tolist()})
 
     @app.post("/exports/{name}/search")
     def search(name: str, request: SearchRequest):

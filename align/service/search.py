@@ -3,12 +3,13 @@
 An export is HOME/exports/<name> (written by a job with ``export``, or by ``align export``); its
 gallery index, when there is one, is HOME/indexes/<name>. A loaded export is reused until its
 export.json changes (a new export of the same name swaps the folder in whole). Calls on one
-export take turns on its text encoder (its fast tokenizer is not safe to share between threads,
-and on a CPU two encodes at once are no faster than one after the other), and embed calls that
-arrive together are answered by one batched pass (``Batcher``).
+export are answered by one thread that owns its text encoder (its fast tokenizer is not safe to
+share between threads, and on a CPU two encodes at once are no faster than one after the other);
+calls that arrive together share one batched pass (``Batcher``).
 """
 from __future__ import annotations
 
+import queue
 import threading
 import time
 from collections import OrderedDict
@@ -30,40 +31,48 @@ class NotFound(AlignError):
 
 
 class Batcher:
-    """Concurrent embed calls on one export share forward passes.
+    """One thread per loaded export runs its text encoder; concurrent calls share its passes.
 
-    The first caller to find the encoder idle becomes the leader: it embeds every text waiting at
-    that moment in one go, hands each caller its rows, and repeats until no one waits. Fifty
-    callers at once cost a few batched passes instead of fifty small ones. Padding to a longer
+    Callers queue their texts and wait; the thread takes everything waiting, embeds it in one go,
+    hands each caller its rows, and repeats. Fifty callers at once cost a few batched passes
+    instead of fifty small ones, and only this one thread ever calls into torch: every request
+    thread that did would start its own OpenMP thread team, and on a small CPU those teams spin
+    against each other (measured here: 50 concurrent calls 5-7x slower). Padding to a longer
     neighbour changes no result beyond float noise (mean pooling is over the attention mask).
     """
 
-    def __init__(self, embed_many):
+    def __init__(self, embed_many, name: str):
         self._embed_many = embed_many
-        self._lock = threading.Lock()
-        self._waiting: list[tuple[list[str], dict]] = []
-        self._busy = False
+        self._queue: queue.SimpleQueue = queue.SimpleQueue()
+        self._thread = threading.Thread(target=self._run, name=f"align-embed-{name}", daemon=True)
+        self._thread.start()
 
     def embed(self, texts: list[str]) -> np.ndarray:
         slot: dict = {"done": threading.Event()}
-        with self._lock:
-            self._waiting.append((texts, slot))
-            lead = not self._busy
-            self._busy = True
-        if lead:
-            self._drain()
+        self._queue.put((texts, slot))
         slot["done"].wait()
         if "error" in slot:
             raise slot["error"]
         return slot["rows"]
 
-    def _drain(self) -> None:
+    def close(self) -> None:
+        self._queue.put(None)
+
+    def _run(self) -> None:
         while True:
-            with self._lock:
-                batch, self._waiting = self._waiting, []
-                if not batch:
-                    self._busy = False
-                    return
+            first = self._queue.get()
+            if first is None:
+                return
+            batch = [first]
+            while True:
+                try:
+                    item = self._queue.get_nowait()
+                except queue.Empty:
+                    break
+                if item is None:
+                    self._queue.put(None)  # finish this batch, then stop
+                    break
+                batch.append(item)
             try:
                 rows = self._embed_many([t for texts, _ in batch for t in texts])  # (sum N, D)
             except Exception as exc:  # noqa: BLE001 - every caller of the batch hears of it
@@ -89,11 +98,7 @@ class LoadedExport:
     batcher: Batcher | None = None
 
     def __post_init__(self):
-        self.batcher = Batcher(self._embed_locked)
-
-    def _embed_locked(self, texts: list[str]) -> np.ndarray:
-        with self.lock:
-            return self.model.embed_text(texts)
+        self.batcher = Batcher(self.model.embed_text, self.name)
 
 
 def _stamp(path: Path) -> tuple:
@@ -136,10 +141,12 @@ class ExportCache:
             if entry is None or entry.stamp != stamp:
                 from ..api import load
 
+                if entry is not None:
+                    entry.batcher.close()  # the export was replaced; calls already queued still get answers
                 entry = LoadedExport(name, stamp, load(folder, image_tower=False))  # text side only
                 self._loaded[name] = entry
                 while len(self._loaded) > self.max_loaded:
-                    self._loaded.popitem(last=False)
+                    self._loaded.popitem(last=False)[1].batcher.close()
             self._loaded.move_to_end(name)
             return entry
 
@@ -163,8 +170,8 @@ class ExportCache:
                 # a gallery embedded by another tower than the export's would answer nonsense
                 check_image_side_matches(entry.model.export_dir, index.info["image_fingerprint"])
                 entry.index, entry.index_stamp = index, _stamp(info)
-            queries = entry.model.embed_text(texts)  # (Q, D)
-            results, used = entry.index.search(queries, k, backend)
+        queries = entry.batcher.embed(texts)  # (Q, D)
+        results, used = entry.index.search(queries, k, backend)
         return {"export": name, "backend": used, "gallery_size": len(entry.index),
                 "elapsed_ms": round(1000 * (time.perf_counter() - started), 2),
                 "queries": [{"text": t, "results": r} for t, r in zip(texts, results)]}
