@@ -43,7 +43,8 @@ def _console() -> tuple[Console, io.StringIO]:
 
 
 def _entry_files(entry: Path) -> dict[str, bytes]:
-    return {name: (entry / name).read_bytes() for name in (A.FINGERPRINT, A.FEATURE_KEYS, A.FEATURE_SKIPPED, A.FEATURES)}
+    names = (A.FINGERPRINT, A.FEATURE_KEYS, A.FEATURE_SKIPPED, A.FEATURES)
+    return {name: (entry / name).read_bytes() for name in names}
 
 
 @pytest.fixture(scope="module")
@@ -60,7 +61,8 @@ def test_second_run_with_same_fingerprint_runs_no_forward_pass(tower, small_digi
     rows = read_manifest(small_digits_shards)["splits"]["train"]["samples"]
     assert len(feats.keys) == rows and passes == -(-rows // CHUNK)  # one pass per chunk of 32
     assert feats.build is not None and feats.array.shape == (rows, 1, tower.feature_dim)
-    assert feats.fingerprint["split_content_hash"] == read_manifest(small_digits_shards)["splits"]["train"]["content_hash"]
+    assert feats.fingerprint["split_content_hash"] == read_manifest(small_digits_shards)["splits"]["train"][
+        "content_hash"]
 
     # a freshly loaded tower (as a new command would have) with the same weights and preprocessing
     again = load_image_tower(_cfg())
@@ -234,7 +236,8 @@ def test_view_schedule_is_a_function_of_seed_and_epoch():
 def test_align_features_command_builds_then_reuses(small_digits_shards, tmp_path, capsys):
     from align.cli import main
 
-    args = ["features", str(REPO / "recipes" / "lora-cpu.toml"), "--set", f"data.shards={json.dumps(str(small_digits_shards))}",
+    args = ["features", str(REPO / "recipes" / "lora-cpu.toml"),
+            "--set", f"data.shards={json.dumps(str(small_digits_shards))}",
             "--set", f"vision.image_size={SIZE}", "--set", f"vision.feature_cache={json.dumps(str(tmp_path))}"]
     rows = read_manifest(small_digits_shards)["splits"]["train"]["samples"]
     assert main(args) == 0
