@@ -40,8 +40,12 @@ lr = 2e-3
 warmup_steps = 3
 checkpoint_every = 4
 log_every = 2
+threads = 1
 """
 STEPS = 16
+# threads = 1: a tiny model gains nothing from a second thread, and when the machine is busy an
+# OpenMP team waits at every barrier for its descheduled twin (measured on a loaded 2-core box:
+# 0.22 s per step with one thread, 1.6 s with two)
 # CPU, one process, same seed and data: the resumed run is expected to be bit-identical to the
 # uninterrupted one (tests/test_resume.py shows it for the loop); 1e-6 absolute leaves room only
 # for float noise, far below any real difference a lost or repeated step makes (~1e-3 in loss).

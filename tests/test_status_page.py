@@ -34,6 +34,7 @@ lr = 2e-3
 warmup_steps = 2
 checkpoint_every = 0
 log_every = 1
+threads = 1
 """
 LOSS_BLUE = (0x2F, 0x6F, 0xDF)  # the loss line's colour in align/service/page.py
 

@@ -22,7 +22,6 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from .. import artifacts as A
-from ..checkpoint import write_json_atomic
 from ..errors import AlignError
 
 DEFAULT_HOST = "127.0.0.1"
@@ -181,6 +180,8 @@ class Settings:
                 "data_roots": [str(r) for r in self.data_roots], "max_body_bytes": self.max_body_bytes}
 
     def save(self) -> None:
+        from ..checkpoint import write_json_atomic  # (torch comes with it: keep `align jobs` light)
+
         write_json_atomic(Home(self.home).settings_path, self.to_json())
 
 
