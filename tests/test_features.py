@@ -5,6 +5,7 @@ from __future__ import annotations
 import io
 import json
 import os
+import shutil
 import subprocess
 import sys
 import textwrap
@@ -56,6 +57,18 @@ def one_go(tower, small_digits_shards, tmp_path_factory):
     return feats, tower.forward_passes - before
 
 
+@pytest.fixture(scope="module")
+def val_one_go(tower, small_digits_shards, tmp_path_factory):
+    """The (smaller) val split cached in one build; tests copy it rather than build it again."""
+    root = tmp_path_factory.mktemp("cache-val")
+    return image_features(tower, small_digits_shards, "val", _cfg(), _console()[0], cache_dir=root)
+
+
+def _copy_entry(feats, root: Path) -> Path:
+    shutil.copytree(feats.path, root / feats.path.name)
+    return root / feats.path.name
+
+
 def test_second_run_with_same_fingerprint_runs_no_forward_pass(tower, small_digits_shards, one_go):
     feats, passes = one_go
     rows = read_manifest(small_digits_shards)["splits"]["train"]["samples"]
@@ -86,9 +99,9 @@ def test_changed_preprocessing_rebuilds_and_names_the_field(tower, small_digits_
     assert f"tower.preprocessing.input_size: [3, {SIZE}, {SIZE}] -> [3, {SIZE + 8}, {SIZE + 8}]" in text
 
 
-def test_changed_weights_file_rebuilds_and_names_the_hash(tower, small_digits_shards, tmp_path):
+def test_changed_weights_file_rebuilds_and_names_the_hash(tower, small_digits_shards, val_one_go, tmp_path):
     root = tmp_path / "cache"
-    image_features(tower, small_digits_shards, "val", _cfg(), _console()[0], cache_dir=root)
+    _copy_entry(val_one_go, root)
     state = {k: v.detach().clone().contiguous() for k, v in tower.model.state_dict().items()}
     first = next(k for k in state if k.endswith("bn1.bias"))
     state[first] += 0.01  # a fine-tuned copy of the same architecture
@@ -103,10 +116,9 @@ def test_changed_weights_file_rebuilds_and_names_the_hash(tower, small_digits_sh
     assert len([p for p in root.iterdir() if (p / A.FEATURES).is_file()]) == 2
 
 
-def test_damaged_entry_is_rebuilt_with_the_reason(tower, small_digits_shards, tmp_path):
-    feats = image_features(tower, small_digits_shards, "val", _cfg(), _console()[0], cache_dir=tmp_path)
-    reference = _entry_files(feats.path)
-    with open(feats.path / A.FEATURES, "r+b") as fh:
+def test_damaged_entry_is_rebuilt_with_the_reason(tower, small_digits_shards, val_one_go, tmp_path):
+    reference = _entry_files(val_one_go.path)
+    with open(_copy_entry(val_one_go, tmp_path) / A.FEATURES, "r+b") as fh:
         fh.truncate(1000)  # a copy cut short
     console, out = _console()
     again = image_features(tower, small_digits_shards, "val", _cfg(), console, cache_dir=tmp_path)
@@ -161,12 +173,12 @@ def test_killed_build_resumes_to_a_byte_identical_cache(tower, small_digits_shar
     assert not (resumed.path / A.FEATURE_CHUNKS).exists()
 
 
-def test_float16_cache_is_within_half_precision_of_the_fp32_tower(tower, small_digits_shards, one_go):
-    feats = one_go[0]
+def test_float16_cache_is_within_half_precision_of_the_fp32_tower(tower, small_digits_shards, val_one_go):
+    feats = val_one_go
     # read the raw file, not through the loader: float16 rows of (N, K=1, D)
     stored = np.fromfile(feats.path / A.FEATURES, dtype=np.float16).reshape(len(feats.keys), tower.feature_dim)
     keys, pixels = [], []
-    for key, image in iter_images(small_digits_shards, "train"):
+    for key, image in iter_images(small_digits_shards, "val"):
         keys.append(key)
         pixels.append(tower.preprocess(image))
     assert keys == feats.keys
@@ -183,14 +195,14 @@ def test_float16_cache_is_within_half_precision_of_the_fp32_tower(tower, small_d
     assert torch.allclose(feats.embeddings.norm(dim=1), torch.ones(len(keys)), atol=1e-6)
 
 
-def test_decoding_workers_give_the_same_bytes(tower, small_digits_shards, one_go, tmp_path):
+def test_decoding_workers_give_the_same_bytes(tower, small_digits_shards, val_one_go, tmp_path):
     # two DataLoader worker processes decode alternate samples; the stream must keep canonical order
-    feats = image_features(tower, small_digits_shards, "train", _cfg(workers=2), _console()[0], cache_dir=tmp_path)
-    assert _entry_files(feats.path) == _entry_files(one_go[0].path)
+    feats = image_features(tower, small_digits_shards, "val", _cfg(workers=2), _console()[0], cache_dir=tmp_path)
+    assert feats.build is not None and _entry_files(feats.path) == _entry_files(val_one_go.path)
 
 
-def test_augmented_views_are_seeded_per_key_and_view(tower, small_digits_shards, tmp_path):
-    plain = image_features(tower, small_digits_shards, "val", _cfg(), _console()[0], cache_dir=tmp_path / "a")
+def test_augmented_views_are_seeded_per_key_and_view(tower, small_digits_shards, val_one_go, tmp_path):
+    plain = val_one_go
     three = image_features(tower, small_digits_shards, "val", _cfg(), _console()[0], views=3,
                            cache_dir=tmp_path / "a")
     again = image_features(tower, small_digits_shards, "val", _cfg(), _console()[0], views=3,
