@@ -178,6 +178,9 @@ def plot(rows: list[dict], path: Path, chunk: int) -> None:
                 ax.annotate(f"out of memory\nat {r['batch']:,}", (r["batch"], ax.get_ylim()[1] * 0.8),
                             ha="right", fontsize=8)
     ax.set_xscale("log", base=2)
+    batches = sorted({r["batch"] for r in rows})
+    if batches:
+        ax.set_xticks(batches, [f"{b:,}" for b in batches])
     ax.set_xlabel("global batch (pairs per step)")
     ax.set_ylabel("peak resident memory of the process (GiB)")
     ax.set_title("One training step, LoRA MiniLM text tower")
