@@ -90,7 +90,9 @@ def load_timm_model(name: str, weights: str | Path | None = None, num_classes: i
         if len(file_state) == len(headless) and len(file_state) != len(model_state):
             model.reset_classifier(0)
             model_state = model.state_dict()
-        state = _remap_in_order(model_state, file_state, path)
+        # timm's own names without the classifier load by name (safetensors sorts its keys, so
+        # position would not line up); only foreign names fall back to the checked positional map
+        state = file_state if set(file_state) == set(model_state) else _remap_in_order(model_state, file_state, path)
     model.load_state_dict(state, strict=True)
     if num_classes == 0:
         model.reset_classifier(0)

@@ -70,3 +70,14 @@ def test_wrong_weights_fail_loudly(tmp_path):
         load_timm_model("efficientnet_lite0", bad)
     with pytest.raises(AlignError, match="no weights"):
         load_timm_model("efficientnet_lite0", tmp_path / "missing.pth")
+
+
+def test_headless_safetensors_with_timm_names_load_by_name(tmp_path):
+    # a headless timm state dict saved as safetensors (which stores keys sorted, not in model order)
+    from safetensors.torch import save_file
+
+    tower = load_image_tower(VisionConfig(channels_last=False))
+    path = tmp_path / "headless.safetensors"
+    save_file({k: v.contiguous() for k, v in tower.model.state_dict().items()}, str(path))
+    again = load_timm_model("efficientnet_lite0", path)
+    assert weights_sha256(again) == tower.weights_sha256
