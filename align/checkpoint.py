@@ -34,6 +34,20 @@ def write_json_atomic(path: Path, data) -> None:
     write_text_atomic(path, json.dumps(data, indent=2, sort_keys=True) + "\n")
 
 
+def swap_dir_in(temp: Path, final: Path) -> None:
+    """Put a finished folder in place of ``final`` so a reader never sees half of one.
+
+    The previous folder is moved aside first and removed only after the rename succeeded.
+    """
+    old = final.with_name(f".{final.name}.old")
+    if old.exists():
+        shutil.rmtree(old)
+    if final.exists():
+        os.replace(final, old)
+    os.replace(temp, final)
+    shutil.rmtree(old, ignore_errors=True)
+
+
 def list_checkpoints(run_dir: Path) -> list[Path]:
     root = Path(run_dir) / A.CHECKPOINTS
     if not root.is_dir():

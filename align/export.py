@@ -39,7 +39,7 @@ from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 from . import __version__
 from . import artifacts as A
 from .api import load_adapter_encoder, load_text_encoder
-from .checkpoint import write_json_atomic, write_text_atomic
+from .checkpoint import swap_dir_in, write_json_atomic, write_text_atomic
 from .errors import AlignError
 from .evaluate import check_tower_matches, load_run_recipe
 from .recipe import dump_recipe
@@ -336,14 +336,7 @@ def _open_permissions(root: Path) -> None:
 def _swap_in(temp: Path, final: Path) -> None:
     """Replace a previous export only once the new one is complete."""
     _open_permissions(temp)
-    old = final.with_name(f".{final.name}.old")
-    if old.exists():
-        shutil.rmtree(old)
-    if final.exists():
-        os.replace(final, old)
-    os.replace(temp, final)
-    if old.exists():
-        shutil.rmtree(old)
+    swap_dir_in(temp, final)
 
 
 def export_run(run_dir: str | Path, out: str | Path, *, checkpoint: str | Path | None = None, onnx: bool = True,

@@ -30,7 +30,7 @@ from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, T
 
 from . import artifacts as A
 from .api import AlignedModel, check_image_side_matches, load, open_rgb, read_json
-from .checkpoint import write_json_atomic
+from .checkpoint import swap_dir_in, write_json_atomic
 from .errors import AlignError, DataError, FingerprintMismatch
 
 FORMAT_VERSION = 1
@@ -408,13 +408,7 @@ def build_index(export_dir: str | Path, source: str | Path, out: str | Path, *, 
             umask = os.umask(0)
             os.umask(umask)
             path.chmod((0o777 if path.is_dir() else 0o666) & ~umask)
-        old = out.with_name(f".{out.name}.old")
-        if old.exists():
-            shutil.rmtree(old)
-        if out.exists():
-            os.replace(out, old)
-        os.replace(temp, out)
-        shutil.rmtree(old, ignore_errors=True)
+        swap_dir_in(temp, out)
     except BaseException:
         shutil.rmtree(temp, ignore_errors=True)
         raise

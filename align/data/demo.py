@@ -393,14 +393,8 @@ def _pair_rng(seed: int, glaze: str, pattern: str, index: int) -> np.random.Gene
 
 def _replace_dir(temp: Path, final: Path) -> None:
     """Swap a finished folder into place, so a reader never sees half a catalogue."""
-    old = final.with_name(f".{final.name}.old")
-    if old.exists():
-        shutil.rmtree(old)
-    if final.exists():
-        os.replace(final, old)
-    os.replace(temp, final)
-    if old.exists():
-        shutil.rmtree(old)
+    from ..checkpoint import swap_dir_in
+    swap_dir_in(temp, final)
 
 
 def _draw_pair(folder: str, glaze: str, pattern: str, per_pair: int, size: int, seed: int) -> int:
