@@ -1,8 +1,8 @@
 """Checkpoints: what a run must keep to resume exactly, and to be evaluated or exported.
 
 A checkpoint is a folder ``checkpoints/step-000123/`` holding the trainable weights (safetensors),
-the optimizer and scheduler state, the RNG states, a small JSON trainer state and the resolved
-recipe. It is written under a temporary name and renamed, so a folder with that name is complete.
+AdamW's moments, the learning-rate schedule's position, the RNG streams, a small JSON progress
+record and the resolved recipe. It is written under a temporary name and renamed, so a folder with that name is complete.
 Pickled states are read back with ``weights_only=True``.
 """
 from __future__ import annotations
@@ -20,32 +20,7 @@ from safetensors.torch import load_file, save_file
 
 from . import artifacts as A
 from .errors import AlignError
-
-
-def write_text_atomic(path: Path, text: str) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    with os.fdopen(fd, "w", encoding="utf-8") as fh:
-        fh.write(text)
-    os.replace(tmp, path)
-
-
-def write_json_atomic(path: Path, data) -> None:
-    write_text_atomic(path, json.dumps(data, indent=2, sort_keys=True) + "\n")
-
-
-def swap_dir_in(temp: Path, final: Path) -> None:
-    """Put a finished folder in place of ``final`` so a reader never sees half of one.
-
-    The previous folder is moved aside first and removed only after the rename succeeded.
-    """
-    old = final.with_name(f".{final.name}.old")
-    if old.exists():
-        shutil.rmtree(old)
-    if final.exists():
-        os.replace(final, old)
-    os.replace(temp, final)
-    shutil.rmtree(old, ignore_errors=True)
+from .fileio import swap_dir_in, write_json_atomic, write_text_atomic  # noqa: F401 - re-exported for old importers
 
 
 def list_checkpoints(run_dir: Path) -> list[Path]:
@@ -53,7 +28,7 @@ def list_checkpoints(run_dir: Path) -> list[Path]:
     if not root.is_dir():
         return []
     found = [p for p in root.iterdir() if p.is_dir() and p.name.startswith(A.CHECKPOINT_PREFIX)
-             and (p / A.TRAINER_STATE).is_file()]
+             and (p / A.PROGRESS).is_file()]
     return sorted(found, key=lambda p: int(p.name[len(A.CHECKPOINT_PREFIX):]))
 
 
@@ -91,13 +66,18 @@ def save_checkpoint(run_dir: Path, step: int, weights: dict[str, torch.Tensor], 
     torch.save(scheduler.state_dict(), tmp / A.SCHEDULER_STATE)
     torch.save(rng_state(), tmp / A.RNG_STATE)
     (tmp / A.RESOLVED_RECIPE).write_text(recipe_toml, encoding="utf-8")
-    (tmp / A.TRAINER_STATE).write_text(json.dumps({"step": step, **trainer_state}, indent=2), encoding="utf-8")
+    (tmp / A.PROGRESS).write_text(json.dumps({"step": step, **trainer_state}, indent=2), encoding="utf-8")
     if final.exists():
         shutil.rmtree(final)
     os.replace(tmp, final)
     for old in list_checkpoints(run_dir)[:-keep] if keep > 0 else []:
         shutil.rmtree(old, ignore_errors=True)
     return final
+
+
+def read_progress(checkpoint: Path) -> dict:
+    """The progress record of a complete checkpoint: step, elapsed_s, the image tower's fingerprint."""
+    return json.loads((Path(checkpoint) / A.PROGRESS).read_text(encoding="utf-8"))
 
 
 def load_weights(checkpoint: Path) -> dict[str, torch.Tensor]:
@@ -113,7 +93,7 @@ def load_training_state(checkpoint: Path, optimizer, scheduler) -> dict:
     optimizer.load_state_dict(torch.load(checkpoint / A.OPTIMIZER_STATE, weights_only=True))
     scheduler.load_state_dict(torch.load(checkpoint / A.SCHEDULER_STATE, weights_only=True))
     set_rng_state(torch.load(checkpoint / A.RNG_STATE, weights_only=True))
-    return json.loads((checkpoint / A.TRAINER_STATE).read_text(encoding="utf-8"))
+    return read_progress(checkpoint)
 
 
 def apply_weights(named_params: dict[str, torch.nn.Parameter], weights: dict[str, torch.Tensor], where: Path) -> None:

@@ -15,7 +15,6 @@ numpy by default, faiss ``IndexFlatIP`` for large galleries; both return the sam
 from __future__ import annotations
 
 import contextlib
-import os
 import shutil
 import tempfile
 import time
@@ -30,8 +29,8 @@ from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, T
 
 from . import artifacts as A
 from .api import AlignedModel, check_image_side_matches, load, open_rgb, read_json
-from .checkpoint import swap_dir_in, write_json_atomic
 from .errors import AlignError, DataError, FingerprintMismatch
+from .fileio import check_output_dir, open_permissions, swap_dir_in, write_json_atomic
 
 FORMAT_VERSION = 1
 FAISS_AUTO_ROWS = 100_000  # above this many images "auto" searches with faiss (common practice: exact flat IP)
@@ -153,6 +152,20 @@ class GalleryIndex:
         return results, used
 
 
+def query_answer(index: GalleryIndex, texts: Sequence[str], queries: np.ndarray, k: int, backend: str,
+                 started: float, source: dict, faiss_above: int = FAISS_AUTO_ROWS) -> dict:
+    """The answer to a text search, one record for ``align query`` and the service's ``/search``.
+
+    ``queries`` (Q, D) are the embedded ``texts``; ``source`` names what answered (``{"index": folder}``
+    or ``{"export": name}``); ``started`` is the ``time.perf_counter()`` the timing counts from.
+    Returns ``{**source, backend, gallery_size, elapsed_ms, queries: [{text, results: [{rank, key, score}]}]}``.
+    """
+    results, used = index.search(queries, k, backend, faiss_above)
+    return {**source, "backend": used, "gallery_size": len(index),
+            "elapsed_ms": round(1000 * (time.perf_counter() - started), 2),
+            "queries": [{"text": t, "results": r} for t, r in zip(texts, results)]}
+
+
 def load_index(folder: str | Path) -> GalleryIndex:
     folder = Path(folder)
     hint = "build it with `align index EXPORT_DIR SOURCE --out INDEX`"
@@ -181,10 +194,8 @@ class GallerySearch:
     def query(self, texts: Sequence[str], k: int = 10, backend: str = "auto",
               faiss_above: int = FAISS_AUTO_ROWS) -> dict:
         started = time.perf_counter()
-        results, used = self.index.search(self.model.embed_text(list(texts)), k, backend, faiss_above)
-        return {"index": str(self.index.folder), "backend": used, "gallery_size": len(self.index),
-                "elapsed_ms": round(1000 * (time.perf_counter() - started), 2),
-                "queries": [{"text": t, "results": r} for t, r in zip(texts, results)]}
+        return query_answer(self.index, texts, self.model.embed_text(list(texts)), k, backend, started,
+                            {"index": str(self.index.folder)}, faiss_above)
 
 
 def query_index(index_dir: str | Path, texts: Sequence[str], k: int = 10, backend: str = "auto",
@@ -357,13 +368,6 @@ def _write_unit_rows(path: Path, rows: np.ndarray) -> None:
     del out
 
 
-def _check_out(out: Path) -> None:
-    if out.exists() and not out.is_dir():
-        raise AlignError(f"--out {out} is a file", "pass a folder path (it is created if missing)")
-    if out.is_dir() and any(out.iterdir()) and not (out / A.INDEX_INFO).is_file():
-        raise AlignError(f"--out {out} holds files that are not an align index", "pass an empty or new folder")
-
-
 def build_index(export_dir: str | Path, source: str | Path, out: str | Path, *, weights: str | Path | None = None,
                 embeddings: str | Path | None = None, keys: str | Path | None = None, sample: int = ADOPT_SAMPLE,
                 console: Console | None = None) -> dict:
@@ -371,7 +375,7 @@ def build_index(export_dir: str | Path, source: str | Path, out: str | Path, *, 
     console = console or Console(stderr=True)
     started = time.perf_counter()
     export_dir, source, out = Path(export_dir), Path(source), Path(out)
-    _check_out(out)
+    check_output_dir(out, A.INDEX_INFO, "index")
     if not source.is_dir():
         raise DataError(f"no gallery folder at {source}", "pass a folder of images or a folder written by `align pack`")
     if (embeddings is None) != (keys is None):
@@ -404,10 +408,7 @@ def build_index(export_dir: str | Path, source: str | Path, out: str | Path, *, 
                 "skipped": skipped, **how, "tower_forward_passes": model.image_tower.forward_passes,
                 "seconds": round(time.perf_counter() - started, 2)}
         write_json_atomic(temp / A.INDEX_INFO, info)
-        for path in [temp, *temp.iterdir()]:  # temporary files are private; an index is meant to be shared
-            umask = os.umask(0)
-            os.umask(umask)
-            path.chmod((0o777 if path.is_dir() else 0o666) & ~umask)
+        open_permissions(temp)  # temporary files are private; an index is meant to be shared
         swap_dir_in(temp, out)
     except BaseException:
         shutil.rmtree(temp, ignore_errors=True)

@@ -25,6 +25,8 @@ from PIL import Image, ImageFilter
 from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
 
+from ..fileio import swap_dir_in, write_bytes_atomic
+
 GLAZES: dict[str, tuple[int, int, int]] = {
     "cobalt": (28, 66, 168),
     "terracotta": (186, 80, 50),
@@ -391,12 +393,6 @@ def _pair_rng(seed: int, glaze: str, pattern: str, index: int) -> np.random.Gene
     return np.random.default_rng([seed, list(GLAZES).index(glaze), PATTERNS.index(pattern), index])
 
 
-def _replace_dir(temp: Path, final: Path) -> None:
-    """Swap a finished folder into place, so a reader never sees half a catalogue."""
-    from ..checkpoint import swap_dir_in
-    swap_dir_in(temp, final)
-
-
 def _draw_pair(folder: str, glaze: str, pattern: str, per_pair: int, size: int, seed: int) -> int:
     """Draw and write every sample of one glaze x pattern pair (runs in a worker process)."""
     for index in range(per_pair):
@@ -444,7 +440,7 @@ def write_catalogue(out: str | Path, *, per_pair: int = 16, size: int = 160, see
                 for done in as_completed([pool.submit(_draw_pair, *job) for job in jobs]):
                     progress.advance(task, done.result())
     for folder, temp in temps.items():
-        _replace_dir(temp, out / folder)
+        swap_dir_in(temp, out / folder)  # a reader never sees half a catalogue
     return {"catalogue": len(folders["catalogue"]) * per_pair, "heldout": len(folders["heldout"]) * per_pair,
             "glazes": list(GLAZES), "patterns": list(PATTERNS), "heldout_pairs": [list(pr) for pr in HELDOUT_PAIRS]}
 
@@ -466,8 +462,6 @@ def write_readme_samples(out_dir: str | Path, size: int = 96, seed: int = 0) -> 
         buffer = io.BytesIO()
         small.save(buffer, format="PNG", optimize=True)
         path = out_dir / f"sample-{glaze}-{pattern.replace(' ', '-')}.png"
-        temp = path.with_name(f".{path.name}.partial")
-        temp.write_bytes(buffer.getvalue())
-        os.replace(temp, path)
+        write_bytes_atomic(path, buffer.getvalue())
         written.append(path)
     return written

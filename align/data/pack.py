@@ -32,6 +32,8 @@ from rich.table import Table
 
 from ..artifacts import MANIFEST, REJECTED, SHARD_PATTERN, SPLITS
 from ..errors import DataError
+from ..fileio import write_text_atomic
+from ..labels import canonical_labels
 
 FORMAT_VERSION = 1
 IMAGE_SUFFIXES = (".jpg", ".jpeg", ".png", ".webp", ".bmp")
@@ -82,10 +84,6 @@ def split_of(key: str, val_fraction: float) -> str:
     """Deterministic split by key hash, so a sample keeps its split when others are added."""
     bucket = int(hashlib.sha256(key.encode("utf-8")).hexdigest()[:8], 16) / 2**32  # in [0, 1)
     return "val" if bucket < val_fraction else "train"
-
-
-def canonical_labels(labels: dict) -> str:
-    return json.dumps(labels, sort_keys=True, ensure_ascii=False, separators=(",", ":"))
 
 
 def _label_value(value):
@@ -372,12 +370,6 @@ class _SplitWriter:
                 self._tar = None
 
 
-def _write_atomic(path: Path, text: str) -> None:
-    temp = path.with_name(f".{path.name}.partial")
-    temp.write_text(text, encoding="utf-8")
-    os.replace(temp, path)
-
-
 def _remove_stale_shards(out: Path, keep: set[str]) -> None:
     """Shards of an earlier, larger pack into the same folder would otherwise look current."""
     for path in out.iterdir():
@@ -450,7 +442,7 @@ def pack_source(source: str | Path, out: str | Path, *, val_fraction: float = 0.
         raise
 
     rejected_path = out / REJECTED
-    _write_atomic(rejected_path, "".join(json.dumps(r, ensure_ascii=False) + "\n" for r in rejects))
+    write_text_atomic(rejected_path, "".join(json.dumps(r, ensure_ascii=False) + "\n" for r in rejects))
     by_reason = Counter(r["reason"] for r in rejects)
     if not packed_keys:
         _remove_stale_shards(out, keep=set())
@@ -469,6 +461,6 @@ def pack_source(source: str | Path, out: str | Path, *, val_fraction: float = 0.
         "val_fraction": val_fraction,
     }
     _remove_stale_shards(out, keep={name for w in writers.values() for name in w.shards})
-    _write_atomic(out / MANIFEST, json.dumps(manifest, indent=2, ensure_ascii=False) + "\n")
+    write_text_atomic(out / MANIFEST, json.dumps(manifest, indent=2, ensure_ascii=False) + "\n")
     _summary(console, manifest, rejected_path)
     return manifest

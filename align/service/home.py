@@ -23,6 +23,7 @@ from pathlib import Path
 
 from .. import artifacts as A
 from ..errors import AlignError
+from ..fileio import write_json_atomic
 
 DEFAULT_HOST = "127.0.0.1"
 DEFAULT_PORT = 8765
@@ -180,8 +181,6 @@ class Settings:
                 "data_roots": [str(r) for r in self.data_roots], "max_body_bytes": self.max_body_bytes}
 
     def save(self) -> None:
-        from ..checkpoint import write_json_atomic  # (torch comes with it: keep `align jobs` light)
-
         write_json_atomic(Home(self.home).settings_path, self.to_json())
 
 
