@@ -99,6 +99,27 @@ def load_timm_model(name: str, weights: str | Path | None = None, num_classes: i
     return model
 
 
+# What makes two image towers the same: equal on every one of these, their embeddings are equal.
+TOWER_IDENTITY = ("model", "weights_sha256", "preprocessing", "pooling", "normalisation", "feature_dim")
+
+
+def tower_differences(expected: dict, actual: dict) -> list[str]:
+    """The one answer to "is this the same image tower?": the identity fields of two fingerprints
+    that differ, each as 'field: expected -> actual' (empty when they are the same tower)."""
+    def plain(value):
+        if isinstance(value, dict):
+            return {k: list(v) if isinstance(v, (list, tuple)) else v for k, v in value.items()}
+        return value
+
+    out = []
+    for key in TOWER_IDENTITY:
+        want, have = plain(expected.get(key)), plain(actual.get(key))
+        if want != have:
+            short = (lambda v: v[:12] + "…" if v else v) if key == "weights_sha256" else (lambda v: v)
+            out.append(f"{key}: {short(want)} -> {short(have)}")
+    return out
+
+
 def weights_sha256(model: torch.nn.Module) -> str:
     """sha256 over every parameter and buffer (name, dtype, shape, bytes), in state-dict order."""
     digest = hashlib.sha256()
@@ -183,3 +204,20 @@ def load_image_tower(cfg: VisionConfig) -> FrozenImageTower:
     return FrozenImageTower(name=cfg.model, model=model, preprocessing=preprocessing_for(model, cfg.image_size),
                             weights_sha256=weights_sha256(model), weights_path=weights_path,
                             channels_last=cfg.channels_last, feature_dim=model.num_features)
+
+
+_SHARED: dict[tuple, FrozenImageTower] = {}
+
+
+def shared_image_tower(cfg: VisionConfig) -> FrozenImageTower:
+    """The recipe's frozen tower, loaded and hashed once per process and reused (a service job
+    trains, evaluates, exports and indexes against one tower: loading and hashing it costs ~1 s
+    each time). The key includes the weights file's size and modification time, so a replaced file
+    is loaded afresh. The tower is frozen, so sharing it cannot change a result."""
+    path = Path(cfg.weights) if cfg.weights else default_vision_weights()
+    stat = path.stat() if path.is_file() else None
+    key = (cfg.model, str(path), stat and stat.st_size, stat and stat.st_mtime_ns, cfg.image_size, cfg.channels_last)
+    if key not in _SHARED:
+        _SHARED.clear()  # one tower at a time: a process that switches towers does not keep the old one
+        _SHARED[key] = load_image_tower(cfg)
+    return _SHARED[key]

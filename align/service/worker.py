@@ -31,7 +31,7 @@ from pathlib import Path
 from rich.console import Console
 
 from .. import artifacts as A
-from ..checkpoint import latest_checkpoint, write_text_atomic
+from ..run import RunDir
 from ..errors import AlignError
 from .home import Home, Settings, load_settings
 from .spec import confine_recipe_paths
@@ -82,29 +82,6 @@ def worker_alive(locks: Path, worker_id: str) -> bool:
     return False
 
 
-def _drop_torn_lines(path: Path) -> None:
-    """A log line cut by ``kill -9`` mid-write would stop the resume from reading the log."""
-    if not path.is_file():
-        return
-    lines = path.read_text(encoding="utf-8").splitlines()
-    good = []
-    for line in lines:
-        try:
-            json.loads(line)
-            good.append(line)
-        except json.JSONDecodeError:
-            continue
-    if len(good) != len(lines):
-        write_text_atomic(path, "".join(line + "\n" for line in good))
-
-
-def _checkpoint_step(run_dir: Path) -> tuple[Path | None, int]:
-    ckpt = latest_checkpoint(run_dir)
-    if ckpt is None:
-        return None, 0
-    return ckpt, int(json.loads((ckpt / A.TRAINER_STATE).read_text(encoding="utf-8"))["step"])
-
-
 def run_job(job: dict, store: JobStore, settings: Settings, stop: threading.Event) -> str:
     """One attempt at a job; returns the state it leaves the job in."""
     run_dir = Path(job["run_dir"])
@@ -136,13 +113,9 @@ def _attempt(job: dict, store: JobStore, settings: Settings, stop: threading.Eve
     if settings.workers > 1 and recipe.train.threads == 0:
         recipe.train.threads = max(1, (os.cpu_count() or 1) // settings.workers)  # jobs share the cores
 
-    # Resume point: the newest complete checkpoint. Log lines past it are dropped by train(); lines
-    # of an attempt cut before its first checkpoint belong to no checkpoint at all.
-    checkpoint, done = _checkpoint_step(run_dir)
-    if checkpoint is None:
-        (run_dir / A.METRICS_LOG).unlink(missing_ok=True)
-    else:
-        _drop_torn_lines(run_dir / A.METRICS_LOG)
+    # Resume point: the newest complete checkpoint. train() drops the log lines no checkpoint backs
+    # (past it, torn by a kill, or of an attempt cut before its first checkpoint).
+    done = RunDir(run_dir).step()
     store.started_from(job_id, done)
 
     def should_stop() -> str | None:

@@ -1,0 +1,217 @@
+"""A run folder: what ``align train`` writes and what evaluate, export, index and the service read.
+
+    RUN/recipe.resolved.toml     the recipe the run trains with (every default filled in)
+    RUN/metrics.jsonl            one line per logged step
+    RUN/resumes.jsonl            one line per resume that changed a free field (steps, logging, ...)
+    RUN/tokenizer/               the scratch tower's tokenizer, or the extended one with added terms
+    RUN/checkpoints/step-N/      see ``align.checkpoint``
+    RUN/metrics.json             what ``align evaluate`` measured
+
+``RunDir`` is the one place that knows this layout: it reads the resolved recipe, finds checkpoints,
+reads their progress record, rebuilds the trained text tower and loss from a checkpoint, refuses a
+different image tower, and decides whether a recipe may resume the run.
+"""
+from __future__ import annotations
+
+import json
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import torch
+
+from . import artifacts as A
+from .checkpoint import apply_weights, list_checkpoints, load_weights, read_progress
+from .data.shards import read_manifest
+from .errors import AlignError, FingerprintMismatch
+from .fileio import write_text_atomic
+from .loss import build_loss
+from .recipe import Recipe, dump_recipe, load_recipe
+from .text import TextTower, build_text_tower
+from .vision import tower_differences
+
+# Recipe fields a resumed run may change: they steer how long the run goes, how it logs and
+# checkpoints, how fast features are built and how it is evaluated, never what a step computes.
+# Every other field shapes the weights (tower, text kind, LoRA shape, loss, batch, seed, schedule).
+RESUMABLE_CHANGES = ("name", "train.steps", "train.log_every", "train.checkpoint_every",
+                     "train.keep_checkpoints", "train.threads", "vision.batch_size", "vision.workers",
+                     "vision.feature_cache", "data.eval_split", "eval.")
+
+
+def quiet_transformers() -> None:
+    # the library's own weight-loading bars would interleave with ours
+    from transformers.utils import logging as hf_logging
+    hf_logging.disable_progress_bar()
+    hf_logging.set_verbosity_error()
+
+
+def shards_dir(recipe: Recipe) -> Path:
+    """The recipe's packed data folder, checked to be one."""
+    if not recipe.data.shards:
+        raise AlignError("the recipe names no data", "pass --set data.shards=DIR (a folder written by `align pack`)")
+    path = Path(recipe.data.shards)
+    read_manifest(path)  # a clear error when the folder is not packed
+    return path
+
+
+def build_models(recipe: Recipe, run_dir: Path, feature_dim: int, captions: list[str] | None):
+    """Text tower + loss, freshly initialised from the recipe's seed (weights loaded separately)."""
+    tower = build_text_tower(recipe.text, feature_dim, seed=recipe.train.seed, train_captions=captions,
+                             tokenizer_dir=Path(run_dir) / A.TOKENIZER_DIR)
+    return tower, build_loss(recipe.loss)
+
+
+def trainable_parameters(tower: TextTower, loss_fn: torch.nn.Module) -> dict[str, torch.nn.Parameter]:
+    """Every parameter that learns, under the names checkpoints store them by."""
+    named = {f"text.{n}": p for n, p in tower.named_parameters() if p.requires_grad}
+    named |= {f"loss.{n}": p for n, p in loss_fn.named_parameters() if p.requires_grad}
+    return named
+
+
+@dataclass
+class TrainedText:
+    """A checkpoint's text side, in eval mode."""
+
+    tower: TextTower
+    loss_fn: torch.nn.Module
+    checkpoint: Path
+
+
+def _flat(data: dict, prefix: str = "") -> dict:
+    out = {}
+    for key, value in data.items():
+        if isinstance(value, dict) and not (prefix.startswith("eval.") and key == "field_prompts"):
+            out |= _flat(value, f"{prefix}{key}.")
+        else:
+            out[f"{prefix}{key}"] = value
+    return out
+
+
+def recipe_changes(old: Recipe, new: Recipe) -> dict[str, tuple]:
+    """Dotted recipe fields whose values differ: {field: (old, new)}."""
+    a, b = _flat(old.to_dict()), _flat(new.to_dict())
+    return {k: (a.get(k), b.get(k)) for k in sorted(set(a) | set(b)) if a.get(k) != b.get(k)}
+
+
+def _resumable(field: str) -> bool:
+    return any(field == f or (f.endswith(".") and field.startswith(f)) for f in RESUMABLE_CHANGES)
+
+
+class RunDir:
+    """One run folder (see the module docstring for its layout)."""
+
+    def __init__(self, path: str | Path):
+        self.path = Path(path)
+
+    @property
+    def recipe_path(self) -> Path:
+        return self.path / A.RESOLVED_RECIPE
+
+    @property
+    def metrics_log(self) -> Path:
+        return self.path / A.METRICS_LOG
+
+    @property
+    def tokenizer_dir(self) -> Path:
+        return self.path / A.TOKENIZER_DIR
+
+    def recipe(self) -> Recipe:
+        if not self.recipe_path.is_file():
+            raise AlignError(f"{self.path} is not a run folder (no {A.RESOLVED_RECIPE})",
+                             "pass the --run-dir you trained into, e.g. runs/demo")
+        return load_recipe(self.recipe_path)
+
+    def write_recipe(self, recipe: Recipe) -> str:
+        text = dump_recipe(recipe)
+        self.path.mkdir(parents=True, exist_ok=True)
+        write_text_atomic(self.recipe_path, text)
+        return text
+
+    # -- checkpoints -------------------------------------------------------------------------
+    def checkpoints(self) -> list[Path]:
+        return list_checkpoints(self.path)
+
+    def latest(self) -> Path | None:
+        found = self.checkpoints()
+        return found[-1] if found else None
+
+    def checkpoint(self, chosen: str | Path | None = None) -> Path:
+        """The named checkpoint (a path, or a name under checkpoints/), else the newest."""
+        if chosen is None:
+            latest = self.latest()
+            if latest is None:
+                raise AlignError(f"{self.path} has no checkpoint", "train it first: align train RECIPE --run-dir DIR")
+            return latest
+        path = Path(chosen)
+        if not path.is_dir():
+            path = self.path / A.CHECKPOINTS / str(chosen)
+        if path not in self.checkpoints():
+            names = ", ".join(p.name for p in self.checkpoints()) or "none"
+            raise AlignError(f"no complete checkpoint {chosen} in {self.path}", f"pick one of: {names}")
+        return path
+
+    def progress(self, checkpoint: Path | None = None) -> dict:
+        """A checkpoint's progress record (step, elapsed time, the tower it trained against); {} if none."""
+        checkpoint = checkpoint or self.latest()
+        return read_progress(checkpoint) if checkpoint is not None else {}
+
+    def step(self) -> int:
+        """The step the newest checkpoint reached (0 without one)."""
+        return int(self.progress().get("step", 0))
+
+    # -- the trained text side ---------------------------------------------------------------
+    def load_trained(self, feature_dim: int, checkpoint: str | Path | None = None,
+                     recipe: Recipe | None = None) -> TrainedText:
+        quiet_transformers()
+        ckpt = self.checkpoint(checkpoint)
+        tower, loss_fn = build_models(recipe or self.recipe(), self.path, feature_dim, captions=None)
+        apply_weights(trainable_parameters(tower, loss_fn), load_weights(ckpt), ckpt)
+        return TrainedText(tower.eval(), loss_fn.eval(), ckpt)
+
+    def check_tower(self, checkpoint: Path, fingerprint: dict) -> None:
+        """Refuse an image tower other than the one the checkpoint was trained against."""
+        trained_with = self.progress(checkpoint).get("tower")
+        differences = tower_differences(trained_with, fingerprint) if trained_with else []
+        if differences:
+            raise FingerprintMismatch(
+                f"the run was trained against another image tower than the recipe now loads "
+                f"({'; '.join(differences)})",
+                "use the vision.model, vision.weights and vision.image_size the run was trained with")
+
+    # -- resuming ----------------------------------------------------------------------------
+    def check_resume(self, recipe: Recipe) -> dict[str, tuple]:
+        """Refuse a resume whose recipe changes a field that shapes the weights; return the free changes."""
+        if not self.recipe_path.is_file():
+            return {}
+        changes = recipe_changes(self.recipe(), recipe)
+        locked = {k: v for k, v in changes.items() if not _resumable(k)}
+        if locked:
+            listed = "; ".join(f"{k}: {v[0]!r} -> {v[1]!r}" for k, v in locked.items())
+            raise AlignError(f"this recipe cannot resume {self.path}: it changes what the run trains ({listed})",
+                             f"resume with the run's own recipe ({self.recipe_path}), changing only "
+                             f"steps, logging, checkpoint cadence, threads or evaluation settings; "
+                             f"or train into a new --run-dir")
+        return changes
+
+    def record_resume(self, step: int, changes: dict[str, tuple]) -> None:
+        if changes:
+            line = {"step": step, "time": time.strftime("%Y-%m-%dT%H:%M:%S"),
+                    "changed": {k: list(v) for k, v in changes.items()}}
+            with open(self.path / A.RESUMES_LOG, "a", encoding="utf-8") as fh:
+                fh.write(json.dumps(line) + "\n")
+
+    def truncate_log(self, after_step: int) -> None:
+        """Keep only the log lines a checkpoint backs: lines past ``after_step`` (written by an
+        interrupted attempt) and lines torn by a kill mid-write are dropped. ``after_step = 0``
+        empties the log: a fresh start owns no earlier line."""
+        if not self.metrics_log.is_file():
+            return
+        kept = []
+        for line in self.metrics_log.read_text(encoding="utf-8").splitlines():
+            try:
+                record = json.loads(line)
+            except json.JSONDecodeError:
+                continue
+            if isinstance(record, dict) and record.get("step", 0) <= after_step:
+                kept.append(line)
+        write_text_atomic(self.metrics_log, "".join(line + "\n" for line in kept))
