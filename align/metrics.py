@@ -1,7 +1,8 @@
 """Metric functions over embeddings: retrieval recall@K, zero-shot accuracy, linear-probe accuracy.
 
 Pure functions on numpy arrays; nothing here loads a model. The evaluator embeds captions and
-images, then hands the arrays to these functions.
+images, then hands the arrays to these functions. Bad input raises a plain ``ValueError``; the
+evaluator, which knows the recipe and the data, turns it into a user-facing error.
 
 Conventions
 -----------
@@ -20,8 +21,6 @@ from typing import Callable, Hashable, Mapping, Sequence
 
 import numpy as np
 from rich.table import Table
-
-from .errors import AlignError, DataError
 
 # Score at most this many queries at once: a block of scores is (block, G) float32, so memory
 # stays bounded however many captions the evaluation split holds.
@@ -48,8 +47,7 @@ class RecallResult:
 def _check_ks(ks: Sequence[int]) -> list[int]:
     ks = list(ks)
     if not ks or any(isinstance(k, bool) or not isinstance(k, (int, np.integer)) or k < 1 for k in ks):
-        raise AlignError(f"recall K values must be positive integers, got {ks!r}",
-                         hint="use values such as [1, 5, 10] (eval.recall_ks)")
+        raise ValueError(f"recall K values must be positive integers such as [1, 5, 10], got {ks!r}")
     return [int(k) for k in ks]
 
 
@@ -63,11 +61,10 @@ def first_hit_ranks(scores: np.ndarray, hits: np.ndarray) -> np.ndarray:
     scores = np.asarray(scores)
     hits = np.asarray(hits, dtype=bool)
     if scores.ndim != 2 or hits.shape != scores.shape:
-        raise AlignError(f"scores and hits must be two (queries, gallery) arrays of one shape, got "
+        raise ValueError(f"scores and hits must be two (queries, gallery) arrays of one shape, got "
                          f"{scores.shape} and {hits.shape}")
     if not np.isfinite(scores).all():
-        raise DataError("similarity scores contain NaN or infinity",
-                        hint="the embeddings are not finite; check the checkpoint or the feature cache")
+        raise ValueError("similarity scores contain NaN or infinity (the embeddings are not finite)")
     num_queries, gallery = scores.shape
     if gallery == 0:
         return np.full(num_queries, -1, dtype=np.int64)
@@ -91,8 +88,7 @@ def recall_from_ranks(ranks: np.ndarray, ks: Sequence[int]) -> RecallResult:
     scored = int(scorable.sum())
     skipped = int(ranks.size - scored)
     if scored == 0:
-        raise DataError(f"none of the {ranks.size} queries has a hit in the gallery, so recall cannot be scored",
-                        hint="check that the evaluation split pairs captions with images of the same split")
+        raise ValueError(f"none of the {ranks.size} queries has a hit in the gallery, so recall cannot be scored")
     valid = ranks[scorable]
     recall = {k: float((valid < k).mean()) for k in ks}
     return RecallResult(recall=recall, scored=scored, skipped=skipped)
@@ -125,8 +121,8 @@ def _group_codes(groups: Sequence, what: str, none_is_missing: bool = True) -> n
         try:
             out[i] = codes.setdefault(group, len(codes))
         except TypeError:
-            raise AlignError(f"{what} must be hashable, got {type(group).__name__} at position {i}",
-                             hint="pass labels as canonical JSON text, e.g. json.dumps(labels, sort_keys=True)") from None
+            raise ValueError(f"{what} must be hashable, got {type(group).__name__} at position {i} "
+                             "(pass labels as their canonical JSON text: align.labels.label_group)") from None
     return out
 
 
@@ -147,15 +143,14 @@ def hit_matrix(query_group: Sequence, gallery_group: Sequence) -> np.ndarray:
 def _as_embeddings(array, name: str) -> np.ndarray:
     array = np.asarray(array)
     if array.ndim != 2:
-        raise AlignError(f"{name} must be a 2-d (items, dim) array, got shape {array.shape}")
+        raise ValueError(f"{name} must be a 2-d (items, dim) array, got shape {array.shape}")
     array = array.astype(np.float32, copy=False)
     if not np.isfinite(array).all():
-        raise DataError(f"{name} contains NaN or infinity",
-                        hint="the model produced non-finite embeddings; check the checkpoint or the feature cache")
+        raise ValueError(f"{name} contain NaN or infinity")
     norms = np.linalg.norm(array, axis=1)
     if array.shape[0] and np.abs(norms - 1.0).max() > _NORM_TOLERANCE:
-        raise AlignError(f"{name} is not L2-normalised (row norms range {norms.min():.4g}..{norms.max():.4g})",
-                         hint="divide each row by its norm before scoring")
+        raise ValueError(f"{name} are not L2-normalised (row norms range {norms.min():.4g}..{norms.max():.4g}); "
+                         "divide each row by its norm before scoring")
     return array
 
 
@@ -182,26 +177,24 @@ def retrieval_results(text_emb: np.ndarray, image_emb: np.ndarray, pair_ids: Seq
     image = _as_embeddings(image_emb, "image embeddings")                         # (M, D)
     n_text, n_image = text.shape[0], image.shape[0]
     if text.shape[1] != image.shape[1]:
-        raise AlignError(f"text embeddings are {text.shape[1]}-d but image embeddings are {image.shape[1]}-d",
-                         hint="the text tower's projection must output the image tower's feature size")
+        raise ValueError(f"text embeddings are {text.shape[1]}-d but image embeddings are {image.shape[1]}-d")
     if n_text == 0 or n_image == 0:
-        raise DataError("nothing to evaluate: no captions or no images",
-                        hint="check that the evaluation split holds samples")
+        raise ValueError("nothing to evaluate: no captions or no images")
     if pair_ids is None:
         if n_text != n_image:
-            raise AlignError(f"{n_text} captions but {n_image} images and no pair ids",
-                             hint="pass pair_ids: for each caption, the row of its image")
+            raise ValueError(f"{n_text} captions but {n_image} images and no pair_ids (for each caption, "
+                             "the row of its image)")
         pair_ids = np.arange(n_text)
     pairs = np.asarray(pair_ids)
     if pairs.shape != (n_text,) or not np.issubdtype(pairs.dtype, np.integer) \
             or (pairs < 0).any() or (pairs >= n_image).any():
-        raise AlignError(f"pair_ids must give, for each of the {n_text} captions, the row (0..{n_image - 1}) "
-                         f"of its image", hint="use range(N) when caption i describes image i")
+        raise ValueError(f"pair_ids must give, for each of the {n_text} captions, the row (0..{n_image - 1}) "
+                         "of its image")
     pairs = pairs.astype(np.int64)
     if label_groups is not None:
         if len(label_groups) != n_image:
-            raise AlignError(f"label_groups has {len(label_groups)} entries but there are {n_image} images",
-                             hint="give one label group per image (None where an image has no labels)")
+            raise ValueError(f"label_groups has {len(label_groups)} entries but there are {n_image} images "
+                             "(one per image, None where an image has no labels)")
         image_codes = _group_codes(label_groups, "label groups")                  # (M,)  -1 = no labels
     else:
         image_codes = np.full(n_image, -1, dtype=np.int64)
@@ -270,18 +263,17 @@ def class_text_embeddings(embed_text: Callable[[list[str]], np.ndarray], class_n
     the mean is L2-normalised again.
     """
     if not class_names:
-        raise AlignError("no class names to embed", hint="zero-shot needs at least one class")
+        raise ValueError("no class names to embed (zero-shot needs at least one class)")
     if not templates:
-        raise AlignError("no prompt templates", hint='set eval.prompts, e.g. ["a photo of {}."]')
+        raise ValueError('no prompt templates (give at least one, e.g. "a photo of {}.")')
     for template in templates:
         if "{}" not in template:
-            raise AlignError(f"prompt template {template!r} has no '{{}}' for the class name",
-                             hint='write templates like "a {} tile"')
+            raise ValueError(f"prompt template {template!r} has no '{{}}' for the class name")
     prompts = [template.format(name) for name in class_names for template in templates]   # class-major
     embedded = np.asarray(embed_text(prompts), dtype=np.float32)                  # (C*T, D)
     if embedded.ndim != 2 or embedded.shape[0] != len(prompts):
-        raise AlignError(f"the text embedder returned shape {embedded.shape} for {len(prompts)} prompts",
-                         hint="embed_text must return one row per prompt")
+        raise ValueError(f"the text embedder returned shape {embedded.shape} for {len(prompts)} prompts "
+                         "(embed_text must return one row per prompt)")
     per_prompt = _l2_normalise(embedded).reshape(len(class_names), len(templates), -1)  # (C, T, D)
     return _l2_normalise(per_prompt.mean(axis=1))                                 # (C, D)
 
@@ -292,14 +284,14 @@ def zero_shot_accuracy(image_emb: np.ndarray, class_emb: np.ndarray, labels: Seq
     classes = np.asarray(class_emb, dtype=np.float32)                             # (C, D)
     labels = np.asarray(labels)
     if image.ndim != 2 or classes.ndim != 2 or image.shape[1] != classes.shape[1]:
-        raise AlignError(f"image embeddings {image.shape} and class embeddings {classes.shape} must be "
+        raise ValueError(f"image embeddings {image.shape} and class embeddings {classes.shape} must be "
                          f"(N, D) and (C, D) with the same D")
     if labels.shape != (image.shape[0],):
-        raise AlignError(f"{image.shape[0]} images but {labels.size} labels", hint="give one label per image")
+        raise ValueError(f"{image.shape[0]} images but {labels.size} labels (give one label per image)")
     if image.shape[0] == 0:
-        raise DataError("no images to classify", hint="check that the evaluation split holds labelled samples")
+        raise ValueError("no images to classify")
     if not np.issubdtype(labels.dtype, np.integer) or (labels < 0).any() or (labels >= classes.shape[0]).any():
-        raise AlignError(f"labels must be class indices 0..{classes.shape[0] - 1}")
+        raise ValueError(f"labels must be class indices 0..{classes.shape[0] - 1}")
     predicted = (image @ classes.T).argmax(axis=1)                                # (N,)
     return float((predicted == labels).mean())
 
@@ -320,14 +312,14 @@ def linear_probe_accuracy(train_x: np.ndarray, train_y: Sequence, test_x: np.nda
     test_x = np.asarray(test_x, dtype=np.float64)
     train_y, test_y = np.asarray(train_y), np.asarray(test_y)
     if train_x.ndim != 2 or test_x.ndim != 2 or train_x.shape[1] != test_x.shape[1]:
-        raise AlignError(f"probe features must be (n, D) with one D, got {train_x.shape} and {test_x.shape}")
+        raise ValueError(f"probe features must be (n, D) with one D, got {train_x.shape} and {test_x.shape}")
     if train_y.shape != (train_x.shape[0],) or test_y.shape != (test_x.shape[0],):
-        raise AlignError("give one probe label per feature row")
+        raise ValueError("give one probe label per feature row")
     if test_x.shape[0] == 0:
-        raise DataError("no test rows for the linear probe", hint="check that the evaluation split holds labelled samples")
+        raise ValueError("no test rows for the linear probe")
     if np.unique(train_y).size < 2:
-        raise DataError(f"the linear probe needs at least two classes in the training rows, found "
-                        f"{np.unique(train_y).size}", hint="the training split must hold more than one value of this field")
+        raise ValueError(f"the linear probe needs at least two classes in the training rows, found "
+                         f"{np.unique(train_y).size}")
     scaler = StandardScaler().fit(train_x)
     probe = LogisticRegression(C=C, max_iter=max_iter, solver="lbfgs", random_state=seed)
     probe.fit(scaler.transform(train_x), train_y)
