@@ -41,6 +41,17 @@ class VisionConfig:
 
 
 @dataclass
+class ScratchConfig:
+    """The size of a tower trained from nothing (``text.kind = "scratch"``); lora and full ignore it."""
+
+    width: int = _f(256, "hidden size: the length of every token vector inside the encoder")
+    layers: int = _f(4, "transformer layers stacked in the encoder")
+    attention_heads: int = _f(4, "attention heads per layer (width must divide by it)")
+    vocabulary_size: int = _f(2000, "WordPiece vocabulary learned from the training captions")
+    dropout: float = _f(0.1, "dropout inside the encoder")
+
+
+@dataclass
 class TextConfig:
     kind: str = _f("lora", "text tower: lora (adapter on a pretrained encoder), full (fine-tune it all), "
                            "scratch (a small encoder trained from nothing)", ("lora", "full", "scratch"))
@@ -51,14 +62,11 @@ class TextConfig:
     lora_alpha: float = _f(16.0, "LoRA scaling alpha (update is alpha/r * B A)")
     lora_dropout: float = _f(0.0, "dropout on the LoRA branch")
     lora_targets: list = _f(["query", "value"], "module names that get LoRA adapters")
-    width: int = _f(256, "scratch tower: hidden width")
-    depth: int = _f(4, "scratch tower: transformer layers")
-    heads: int = _f(4, "scratch tower: attention heads")
-    vocab_size: int = _f(2000, "scratch tower: WordPiece vocabulary trained on the training captions")
-    dropout: float = _f(0.1, "scratch tower: dropout inside the encoder")
     new_tokens: Any = _f([], "domain terms added to the tokenizer: a list of terms, or \"auto\" to mine "
                              "the captions for terms the tokenizer splits into 3+ pieces")
     new_tokens_cap: int = _f(64, "at most this many terms are added when new_tokens = \"auto\"")
+    scratch: ScratchConfig = field(default_factory=ScratchConfig,
+                                   metadata={"doc": "the scratch tower's size (kind = \"scratch\" only)"})
 
 
 @dataclass
@@ -129,6 +137,11 @@ class Recipe:
 SECTIONS = {"vision": VisionConfig, "text": TextConfig, "data": DataConfig,
             "loss": LossConfig, "train": TrainConfig, "eval": EvalConfig}
 
+# keys that moved: an old recipe is told the new name instead of "unknown key"
+MOVED_KEYS = {"text.width": "text.scratch.width", "text.depth": "text.scratch.layers",
+              "text.heads": "text.scratch.attention_heads", "text.vocab_size": "text.scratch.vocabulary_size",
+              "text.dropout": "text.scratch.dropout"}
+
 
 def _suggest(name: str, options) -> str:
     close = difflib.get_close_matches(name, list(options), n=1)
@@ -171,13 +184,17 @@ def _build(cls, data: dict, prefix: str):
     kwargs = {}
     for key, value in data.items():
         where = f"{prefix}{key}"
+        if where in MOVED_KEYS:
+            new = MOVED_KEYS[where]
+            raise RecipeError(f"recipe key '{where}' is now '{new}'",
+                              f"write it as {new.rsplit('.', 1)[1]} = {value!r} under [{new.rsplit('.', 1)[0]}]")
         if key not in known:
             raise RecipeError(f"unknown recipe key '{where}'", _suggest(key, known))
         kind = hints[key]
         if dataclasses.is_dataclass(kind):
             if not isinstance(value, dict):
-                raise RecipeError(f"[{key}] must be a table (section), got {value!r}")
-            kwargs[key] = _build(kind, value, f"{key}.")
+                raise RecipeError(f"[{where}] must be a table (section), got {value!r}")
+            kwargs[key] = _build(kind, value, f"{where}.")
             continue
         default = known[key].default if known[key].default is not dataclasses.MISSING else known[key].default_factory()
         value = _coerce(where, value, kind, default)
@@ -213,28 +230,57 @@ def apply_overrides(data: dict, overrides: list[str]) -> dict:
 
 
 def _validate(recipe: Recipe) -> None:
-    t, tr, v, lo = recipe.text, recipe.train, recipe.vision, recipe.loss
+    """Every value a later phase would refuse, refused here with its key and a fix, before any work."""
+    t, sc, tr, v, lo, ev = recipe.text, recipe.text.scratch, recipe.train, recipe.vision, recipe.loss, recipe.eval
     positive = {"train.steps": tr.steps, "train.batch_size": tr.batch_size, "text.max_length": t.max_length,
                 "vision.batch_size": v.batch_size, "vision.views": v.views, "text.lora_rank": t.lora_rank,
-                "text.width": t.width, "text.depth": t.depth, "text.heads": t.heads}
+                "text.scratch.width": sc.width, "text.scratch.layers": sc.layers,
+                "text.scratch.attention_heads": sc.attention_heads, "text.scratch.vocabulary_size": sc.vocabulary_size}
     for where, value in positive.items():
         if value < 1:
-            raise RecipeError(f"{where} must be at least 1, got {value}")
+            raise RecipeError(f"{where} must be at least 1, got {value}", f"for example {where}=1")
     if tr.lr <= 0:
-        raise RecipeError(f"train.lr must be positive, got {tr.lr}")
+        raise RecipeError(f"train.lr must be positive, got {tr.lr}", "for example train.lr=5e-4")
     if tr.chunk_size < 0 or tr.chunk_size > tr.batch_size:
-        raise RecipeError(f"train.chunk_size must be between 0 and train.batch_size ({tr.batch_size}), got {tr.chunk_size}")
-    if t.kind == "scratch" and t.width % t.heads:
-        raise RecipeError(f"text.width ({t.width}) must be divisible by text.heads ({t.heads})")
-    if not 0 < lo.init_temperature < 1:
-        raise RecipeError(f"loss.init_temperature must be in (0, 1), got {lo.init_temperature}")
+        raise RecipeError(f"train.chunk_size must be between 0 and train.batch_size ({tr.batch_size}), got {tr.chunk_size}",
+                          "0 encodes the whole batch at once")
+    if t.kind == "scratch" and sc.width % sc.attention_heads:
+        raise RecipeError(f"text.scratch.width ({sc.width}) must be divisible by text.scratch.attention_heads "
+                          f"({sc.attention_heads})", "each head gets width / attention_heads of every token vector")
+    if t.kind == "scratch" and not 0 <= sc.dropout < 1:
+        raise RecipeError(f"text.scratch.dropout must be in [0, 1), got {sc.dropout}", "for example 0.1")
+    _validate_loss(lo)
     if v.image_size and v.image_size < 32:
         raise RecipeError(f"vision.image_size must be 0 (native) or at least 32, got {v.image_size}")
-    for tpl in recipe.eval.prompts + [p for ps in recipe.eval.field_prompts.values() for p in ps]:
-        if "{}" not in tpl:
-            raise RecipeError(f"prompt template {tpl!r} has no '{{}}' for the class name")
-    if any(k < 1 for k in recipe.eval.recall_ks):
-        raise RecipeError("eval.recall_ks must all be at least 1")
+    _validate_eval(ev)
+
+
+def _validate_loss(lo: LossConfig) -> None:
+    if not 0 < lo.init_temperature < 1:
+        raise RecipeError(f"loss.init_temperature must be in (0, 1), got {lo.init_temperature}", "for example 0.07")
+    if not lo.max_logit_scale > 0:
+        raise RecipeError(f"loss.max_logit_scale must be positive, got {lo.max_logit_scale}", "for example 100")
+    if not lo.init_sigmoid_scale > 0:
+        raise RecipeError(f"loss.init_sigmoid_scale must be positive, got {lo.init_sigmoid_scale}", "for example 10")
+    if lo.block_size < 0:
+        raise RecipeError(f"loss.block_size must be 0 (all at once) or a positive number of rows, got {lo.block_size}",
+                          "0 computes the loss in one piece")
+
+
+def _validate_eval(ev: EvalConfig) -> None:
+    ks = ev.recall_ks
+    if not ks or any(isinstance(k, bool) or not isinstance(k, int) or k < 1 for k in ks):
+        raise RecipeError(f"eval.recall_ks must be a list of integers of at least 1, got {ks!r}",
+                          "for example eval.recall_ks=[1, 5, 10]")
+    templates = {"eval.prompts": ev.prompts, **{f"eval.field_prompts.{k}": v for k, v in ev.field_prompts.items()}}
+    for where, listed in templates.items():
+        if not isinstance(listed, list) or not listed or not all(isinstance(p, str) for p in listed):
+            raise RecipeError(f"{where} must be a non-empty list of prompt templates, got {listed!r}",
+                              '{} stands for the class name, e.g. ["a photo of {}."]')
+        for tpl in listed:
+            if "{}" not in tpl:
+                raise RecipeError(f"prompt template {tpl!r} in {where} has no '{{}}' for the class name",
+                                  'write templates like "a {} tile"')
 
 
 def recipe_from_dict(data: dict) -> Recipe:
@@ -279,23 +325,45 @@ def _toml_value(value: Any) -> str:
     raise TypeError(f"cannot write {value!r} as TOML")
 
 
+def _fields(cls) -> tuple[list, list]:
+    """(value fields, nested tables) of a section's dataclass, in declaration order."""
+    hints = get_type_hints(cls)
+    values = [f for f in dataclasses.fields(cls) if not dataclasses.is_dataclass(hints[f.name])]
+    tables = [(f, hints[f.name]) for f in dataclasses.fields(cls) if dataclasses.is_dataclass(hints[f.name])]
+    return values, tables
+
+
+def _dump_table(lines: list[str], name: str, cls, obj) -> None:
+    values, tables = _fields(cls)
+    lines += ["", f"[{name}]"]
+    for f in values:
+        lines.append(f"# {f.metadata['doc']}")
+        lines.append(f"{f.name} = {_toml_value(getattr(obj, f.name))}")
+    for f, kind in tables:  # a nested table's header ends its parent's keys, so tables come last
+        lines += ["", f"# {f.metadata['doc']}"]
+        _dump_table(lines, f"{name}.{f.name}", kind, getattr(obj, f.name))
+
+
 def dump_recipe(recipe: Recipe) -> str:
     """The resolved recipe as TOML, every field written out, each with its documentation."""
     lines = [f"name = {_toml_value(recipe.name)}"]
     for section, cls in SECTIONS.items():
-        lines += ["", f"[{section}]"]
-        obj = getattr(recipe, section)
-        for f in dataclasses.fields(cls):
-            lines.append(f"# {f.metadata['doc']}")
-            lines.append(f"{f.name} = {_toml_value(getattr(obj, f.name))}")
+        _dump_table(lines, section, cls, getattr(recipe, section))
     return "\n".join(lines) + "\n"
+
+
+def _describe_table(rows: list, name: str, cls) -> None:
+    values, tables = _fields(cls)
+    for f in values:
+        default = f.default if f.default is not dataclasses.MISSING else f.default_factory()
+        rows.append((f"{name}.{f.name}", _toml_value(default), f.metadata["doc"]))
+    for f, kind in tables:
+        _describe_table(rows, f"{name}.{f.name}", kind)
 
 
 def describe_fields() -> list[tuple[str, str, str]]:
     """(key, default, doc) for every recipe field: the recipe reference in the README comes from this."""
     rows = [("name", _toml_value(Recipe().name), "a short name for the run")]
     for section, cls in SECTIONS.items():
-        for f in dataclasses.fields(cls):
-            default = f.default if f.default is not dataclasses.MISSING else f.default_factory()
-            rows.append((f"{section}.{f.name}", _toml_value(default), f.metadata["doc"]))
+        _describe_table(rows, section, cls)
     return rows

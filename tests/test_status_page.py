@@ -22,11 +22,12 @@ name = "page-demo"
 image_size = 32
 [text]
 kind = "scratch"
-width = 64
-depth = 1
-heads = 2
-vocab_size = 300
 max_length = 12
+[text.scratch]
+width = 64
+layers = 1
+attention_heads = 2
+vocabulary_size = 300
 [train]
 steps = 10
 batch_size = 16
