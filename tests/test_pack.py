@@ -9,7 +9,6 @@ from __future__ import annotations
 import hashlib
 import io
 import json
-import os
 import re
 import tarfile
 from pathlib import Path
@@ -24,8 +23,7 @@ from rich.console import Console
 from align.artifacts import MANIFEST, REJECTED
 from align.data.pack import pack_source
 from align.errors import DataError
-
-os.environ.setdefault("HF_HUB_OFFLINE", "1")
+from align.labels import canonical_labels, label_group
 
 
 def quiet() -> Console:
@@ -111,6 +109,11 @@ def test_folder_pack_keeps_good_samples_and_reports_each_reject(photo_folder: Pa
     # labels become strings; no labels file gives {}
     assert json.loads(by_key["coffee"]["json"]) == {"drink": "coffee", "cups": "1"}
     assert json.loads(by_key["rocket"]["json"]) == {}
+    # the stored text is the canonical one (keys sorted, no spaces): the content hashes are taken over it
+    assert by_key["coffee"]["json"].decode() == canonical_labels({"drink": "coffee", "cups": "1"}) \
+        == '{"cups":"1","drink":"coffee"}'
+    assert by_key["rocket"]["json"].decode() == "{}" and label_group({}) is None  # no labels: in no group
+    assert label_group({"drink": "coffee", "cups": "1"}) == by_key["coffee"]["json"].decode()
     # the first of the two same-key files (in sorted order "a.b.png" < "a_b.png") is the one kept
     assert by_key["a_b"]["txt"].decode() == "first of two"
     # webp and bmp are re-encoded as PNG without changing a pixel (lossless webp, bmp)
