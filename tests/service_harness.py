@@ -16,6 +16,8 @@ from pathlib import Path
 import httpx
 import psutil
 
+from align.offline import offline_env
+
 REPO = Path(__file__).resolve().parents[1]
 
 
@@ -64,7 +66,7 @@ class Service:
         cmd = [sys.executable, "-m", "align.cli", "serve", "--home", str(self.home), "--port", str(self.port)]
         for root in self.data_roots:
             cmd += ["--data-root", str(root)]
-        env = dict(os.environ, HF_HUB_OFFLINE="1", TRANSFORMERS_OFFLINE="1", TOKENIZERS_PARALLELISM="false")
+        env = offline_env(dict(os.environ))
         self.proc = subprocess.Popen(cmd + self.extra_args, cwd=REPO, stdout=log, stderr=subprocess.STDOUT, env=env)
         log.close()
 

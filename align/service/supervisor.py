@@ -19,6 +19,7 @@ import threading
 import time
 from pathlib import Path
 
+from ..offline import offline_env
 from .home import Home, Settings
 
 RESTART_BACKOFF_S = (1.0, 2.0, 5.0, 15.0, 30.0)
@@ -51,11 +52,8 @@ class WorkerPool:
 
     def _spawn(self, slot: int) -> subprocess.Popen:
         package_parent = str(Path(__file__).resolve().parents[2])  # so `-m align...` imports this very copy
-        env = dict(os.environ)
+        env = offline_env(dict(os.environ))
         env["PYTHONPATH"] = os.pathsep.join([package_parent] + ([env["PYTHONPATH"]] if env.get("PYTHONPATH") else []))
-        env.setdefault("HF_HUB_OFFLINE", "1")
-        env.setdefault("TRANSFORMERS_OFFLINE", "1")
-        env.setdefault("TOKENIZERS_PARALLELISM", "false")
         log = open(self.home.logs / f"worker-{slot}.log", "ab")
         try:
             return subprocess.Popen(
