@@ -156,7 +156,7 @@ class ExportCache:
 
     def search(self, name: str, texts: list[str], k: int, backend: str = "auto") -> dict:
         from ..api import check_image_side_matches
-        from ..index import load_index
+        from ..index import load_index, query_answer
 
         entry = self.get(name)
         folder = self._folder(self.home.indexes, name, "index")
@@ -171,7 +171,4 @@ class ExportCache:
                 check_image_side_matches(entry.model.export_dir, index.info["image_fingerprint"])
                 entry.index, entry.index_stamp = index, _stamp(info)
         queries = entry.batcher.embed(texts)  # (Q, D)
-        results, used = entry.index.search(queries, k, backend)
-        return {"export": name, "backend": used, "gallery_size": len(entry.index),
-                "elapsed_ms": round(1000 * (time.perf_counter() - started), 2),
-                "queries": [{"text": t, "results": r} for t, r in zip(texts, results)]}
+        return query_answer(entry.index, texts, queries, k, backend, started, {"export": name})
