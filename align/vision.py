@@ -10,7 +10,6 @@ from __future__ import annotations
 import hashlib
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Iterable
 
 import torch
 import torch.nn.functional as F
@@ -168,19 +167,6 @@ class FrozenImageTower:
     def embed_pixels(self, pixels: torch.Tensor) -> torch.Tensor:
         """The image embedding: pooled output, L2-normalised. (B, 3, H, W) -> (B, D)."""
         return F.normalize(self.pooled(pixels), dim=-1)
-
-    def embed_images(self, images: Iterable[Image.Image | str | Path], batch_size: int = 32) -> torch.Tensor:
-        images = list(images)
-        out = []
-        for start in range(0, len(images), batch_size):
-            batch = []
-            for item in images[start:start + batch_size]:
-                if not isinstance(item, Image.Image):
-                    with Image.open(item) as opened:
-                        item = opened.convert("RGB")
-                batch.append(self.preprocess(item))
-            out.append(self.embed_pixels(torch.stack(batch)))
-        return torch.cat(out) if out else torch.empty(0, self.feature_dim)
 
 
 def preprocessing_for(model: torch.nn.Module, image_size: int = 0) -> dict:

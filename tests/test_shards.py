@@ -1,4 +1,4 @@
-"""Reading packed shards: one canonical order for text and images, exact bytes, per-rank shard slices.
+"""Reading packed shards: one canonical order for text and images, exact bytes.
 
 Outside references: scikit-image's bundled sample photos as the images (their numpy arrays are the
 ground truth for lossless PNG round trips) and Python's ``tarfile`` for the member order on disk.
@@ -17,7 +17,7 @@ from PIL import Image
 from rich.console import Console
 
 from align.data.pack import pack_source
-from align.data.shards import iter_image_bytes, iter_images, load_table, read_manifest, split_shard_urls
+from align.data.shards import iter_image_bytes, iter_images, load_table, read_manifest
 from align.errors import DataError
 
 PHOTOS = ("chelsea", "coffee", "astronaut", "rocket", "camera", "coins", "moon", "page", "clock",
@@ -105,22 +105,6 @@ def test_an_image_that_fails_to_decode_is_skipped_and_reported(packed, tmp_path:
     keys = [k for k, _ in iter_images(damaged, "train", skipped=skipped)]
     assert skipped == ["chelsea"]
     assert keys == [k for k in load_table(damaged, "train").keys if k != "chelsea"]
-
-
-def test_split_shard_urls_gives_each_rank_a_distinct_slice(packed):
-    _, out, _ = packed
-    shards = [str(out / n) for n in read_manifest(out)["splits"]["train"]["shards"]]
-    assert len(shards) == 6  # 11 samples, two per shard
-    for world in (1, 2, 3, 4):
-        slices = [split_shard_urls(out, "train", rank, world) for rank in range(world)]
-        flat = [u for s in slices for u in s]
-        assert sorted(flat) == sorted(shards) and len(set(flat)) == len(flat)  # a partition
-        assert max(map(len, slices)) - min(map(len, slices)) <= 1
-    with pytest.raises(DataError, match="6 shard") as fewer:
-        split_shard_urls(out, "train", 0, 8)
-    assert "--shard-size" in fewer.value.hint
-    with pytest.raises(DataError, match="outside"):
-        split_shard_urls(out, "train", 3, 3)
 
 
 def test_mistakes_name_the_fix(packed, tmp_path: Path):

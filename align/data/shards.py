@@ -68,8 +68,8 @@ def _samples(urls: list[str], select=None) -> Iterator[dict]:
     """webdataset's own grouping of tar members into samples, in tar order, no shuffling."""
     import webdataset
 
-    # no node/worker splitting: callers get the whole split and slice it themselves
-    # (split_shard_urls), so the order never depends on how many processes are running
+    # no node/worker splitting: every reader gets the whole split (in training, rank 0 reads it and
+    # shares the table), so the order never depends on how many processes are running
     dataset = webdataset.WebDataset(urls, shardshuffle=False, empty_check=False, nodesplitter=None,
                                     workersplitter=None, select_files=select)
     try:
@@ -164,22 +164,3 @@ def iter_images(shards_dir: str | Path, split: str,
             yield sample["__key__"], image
 
     return generate()
-
-
-def split_shard_urls(shards_dir: str | Path, split: str, rank: int, world: int) -> list[str]:
-    """This rank's distinct share of a split's shards (every ``world``-th shard from ``rank``).
-
-    Shards are the unit of work, so each rank needs at least one: with fewer shards than ranks this
-    raises DataError suggesting a smaller ``--shard-size``. Shares can differ by one shard (and the
-    last shard may be short), so callers must cope with ranks seeing different sample counts.
-    """
-    if world < 1 or not 0 <= rank < world:
-        raise DataError(f"rank {rank} is outside a world of {world} processes",
-                        hint="rank must satisfy 0 <= rank < world")
-    shards = split_shards(shards_dir, split)
-    if len(shards) < world:
-        samples = read_manifest(shards_dir)["splits"][split]["samples"]
-        raise DataError(f"split '{split}' has {len(shards)} shard(s) for {world} processes",
-                        hint=f"repack with `--shard-size {max(1, samples // world)}` or smaller so every "
-                             "process gets at least one shard")
-    return [str(p) for p in shards[rank::world]]
