@@ -20,8 +20,6 @@ RNG_STATE = "random_streams.pt"  # torch, numpy and Python RNG states
 RESUMES_LOG = "resumes.jsonl"  # one line per resume that changed a free recipe field
 TOKENIZER_DIR = "tokenizer"
 NEW_TOKENS = "new_tokens.json"  # inside TOKENIZER_DIR: the domain terms added to the tokenizer
-REPORT = "report.md"
-LOSS_PLOT = "loss.png"
 
 # feature cache
 FEATURE_ROOT = "features"
