@@ -17,37 +17,13 @@ from typing import Sequence
 
 import numpy as np
 import torch
-import torch.nn.functional as F
 from PIL import Image
-from torch import nn
 
 from . import artifacts as A
 from .errors import AlignError, FingerprintMismatch
 from .recipe import VisionConfig
-
-IMAGE_SIDE_KEYS = ("model", "weights_sha256", "preprocessing", "pooling", "normalisation", "feature_dim")
-
-
-class EncoderHead(nn.Module):
-    """A plain transformers encoder + mean pooling + projection + L2 norm: the exported text side.
-
-    One module, so the same object is what align runs, what ONNX traces and what the checks compare.
-    """
-
-    def __init__(self, encoder: nn.Module, projection_weight: torch.Tensor):
-        super().__init__()
-        self.encoder = encoder
-        out_dim, hidden = projection_weight.shape
-        self.projection = nn.Linear(hidden, out_dim, bias=False)
-        with torch.no_grad():
-            self.projection.weight.copy_(projection_weight)
-
-    def forward(self, input_ids: torch.Tensor, attention_mask: torch.Tensor) -> torch.Tensor:
-        hidden = self.encoder(input_ids=input_ids, attention_mask=attention_mask).last_hidden_state  # (B, T, H)
-        mask = attention_mask.unsqueeze(-1).to(hidden.dtype)  # (B, T, 1)
-        pooled = (hidden * mask).sum(1) / mask.sum(1).clamp(min=1.0)  # (B, H)
-        return F.normalize(self.projection(pooled).float(), dim=-1)  # (B, D)
-
+from .text import TextTower, text_kind
+from .vision import load_image_tower, tower_differences
 
 def read_json(path: Path, what: str, hint: str) -> dict:
     if not path.is_file():
@@ -71,8 +47,15 @@ def load_projection(folder: Path) -> torch.Tensor:
     return load_file(str(path))["weight"]  # (D, H)
 
 
+def _tower(folder: Path, encoder: torch.nn.Module, tokenizer, head: dict) -> TextTower:
+    """The shared text head around a loaded encoder, with the saved projection, frozen."""
+    tower = TextTower.with_projection(encoder, tokenizer, load_projection(folder), head["kind"],
+                                      int(head["max_length"]))
+    return tower.eval().requires_grad_(False)
+
+
 def load_text_encoder(folder: Path, attn_implementation: str | None = None):
-    """(EncoderHead, tokenizer, head.json) from a ``text_encoder/`` folder, plain transformers only."""
+    """(TextTower, tokenizer, head.json) from a ``text_encoder/`` folder, plain transformers only."""
     from transformers import AutoModel, AutoTokenizer
     from transformers.utils import logging as hf_logging
 
@@ -83,19 +66,17 @@ def load_text_encoder(folder: Path, attn_implementation: str | None = None):
     kwargs = {"attn_implementation": attn_implementation} if attn_implementation else {}
     encoder = AutoModel.from_pretrained(str(folder), local_files_only=True, **kwargs).eval()
     tokenizer = AutoTokenizer.from_pretrained(str(folder), local_files_only=True)
-    model = EncoderHead(encoder, load_projection(folder)).eval().requires_grad_(False)
-    return model, tokenizer, head
+    return _tower(folder, encoder, tokenizer, head), tokenizer, head
 
 
 def load_adapter_encoder(folder: Path, base_model: str | Path | None = None):
-    """(EncoderHead, tokenizer, head.json) from ``adapter/``: the base encoder with peft's adapter on it.
+    """(TextTower, tokenizer, head.json) from ``adapter/``: the base encoder with its kind's adapter on it.
 
     ``base_model`` defaults to the folder recorded in head.json. When the adapter's tokenizer is
     larger than the base's vocabulary (terms were added), the base's embedding matrix is resized
     first; peft then restores the trained rows from the adapter.
     """
-    from peft import PeftModel
-    from transformers import AutoModel, AutoTokenizer
+    from transformers import AutoTokenizer
     from transformers.utils import logging as hf_logging
 
     folder = Path(folder)
@@ -108,25 +89,8 @@ def load_adapter_encoder(folder: Path, base_model: str | Path | None = None):
     hf_logging.set_verbosity_error()
     hf_logging.disable_progress_bar()
     tokenizer = AutoTokenizer.from_pretrained(str(folder), local_files_only=True)
-    base = AutoModel.from_pretrained(str(base_dir), local_files_only=True)
-    if len(tokenizer) != base.get_input_embeddings().num_embeddings:
-        base.resize_token_embeddings(len(tokenizer))
-    encoder = PeftModel.from_pretrained(base, str(folder)).eval()
-    return EncoderHead(encoder, load_projection(folder)).eval().requires_grad_(False), tokenizer, head
-
-
-def fingerprint_differences(expected: dict, actual: dict) -> list[str]:
-    """The image-side fields that differ, each as 'name: expected -> actual'."""
-    out = []
-    for key in IMAGE_SIDE_KEYS:
-        want, have = expected.get(key), actual.get(key)
-        if key == "preprocessing":
-            want = {k: list(v) if isinstance(v, (list, tuple)) else v for k, v in (want or {}).items()}
-            have = {k: list(v) if isinstance(v, (list, tuple)) else v for k, v in (have or {}).items()}
-        if want != have:
-            short = (lambda v: v[:12] + "…") if key == "weights_sha256" else (lambda v: v)
-            out.append(f"{key}: {short(want) if want else want} -> {short(have) if have else have}")
-    return out
+    encoder = text_kind(head["kind"]).load_adapter(folder, base_dir, len(tokenizer))
+    return _tower(folder, encoder, tokenizer, head), tokenizer, head
 
 
 def vision_config_for(image_side: dict, weights: str | Path | None = None) -> VisionConfig:
@@ -145,11 +109,9 @@ def vision_config_for(image_side: dict, weights: str | Path | None = None) -> Vi
 
 def load_checked_tower(image_side: dict, weights: str | Path | None = None):
     """The frozen tower image_side.json describes, refused when its fingerprint differs."""
-    from .vision import load_image_tower
-
     cfg = vision_config_for(image_side, weights)
     tower = load_image_tower(cfg)
-    differences = fingerprint_differences(image_side, tower.fingerprint)
+    differences = tower_differences(image_side, tower.fingerprint)
     if differences:
         recorded = image_side.get("weights", {})
         raise FingerprintMismatch(
@@ -163,7 +125,7 @@ def load_checked_tower(image_side: dict, weights: str | Path | None = None):
 def check_image_side_matches(export_dir: str | Path, fingerprint: dict) -> None:
     """Refuse to pair an export with image embeddings made by another tower (index, query)."""
     export_dir, _, image_side = read_export(export_dir)
-    differences = fingerprint_differences(image_side, fingerprint)
+    differences = tower_differences(image_side, fingerprint)
     if differences:
         raise FingerprintMismatch(f"{export_dir} was trained against another image tower than these image "
                                   f"embeddings ({'; '.join(differences)})",
@@ -188,7 +150,7 @@ def open_rgb(item: Image.Image | str | Path) -> Image.Image:
 class AlignedModel:
     """Text and image embeddings in one shared space, from an export folder."""
 
-    def __init__(self, export_dir: Path, text: EncoderHead, tokenizer, head: dict, image_side: dict,
+    def __init__(self, export_dir: Path, text: TextTower, tokenizer, head: dict, image_side: dict,
                  info: dict, weights: str | Path | None, tower=None):
         self.export_dir = export_dir
         self.text = text
@@ -216,9 +178,7 @@ class AlignedModel:
         return self._tower
 
     def tokenize(self, texts: Sequence[str]) -> dict[str, torch.Tensor]:
-        enc = self.tokenizer(list(texts), padding=True, truncation=True, max_length=int(self.head["max_length"]),
-                             return_tensors="pt")
-        return {"input_ids": enc["input_ids"], "attention_mask": enc["attention_mask"]}
+        return self.text.tokenize(texts)
 
     def embed_text(self, texts: Sequence[str] | str, batch_size: int = 64) -> np.ndarray:
         """(N, D) float32, L2-normalised."""

@@ -13,14 +13,10 @@ encoder never learned to join. This module
 - records the chosen terms beside the extended tokenizer, so a run reloads the same vocabulary.
 
 A "word" is what the tokenizer's own normaliser and pre-tokeniser produce; its "pieces" are what the
-tokenizer's model makes of that word in a caption.
+tokenizer's model makes of that word in a caption (``align.text.tokenizers`` asks the tokenizer).
 """
 from __future__ import annotations
 
-import json
-import os
-import shutil
-import tempfile
 from collections import Counter
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
@@ -29,58 +25,14 @@ from typing import Sequence
 import numpy as np
 import torch
 
-from . import artifacts as A
 from .errors import AlignError
+from .recipe import TextConfig
+from .text.tokenizers import (copy_tokenizer, extend_tokenizer, load_pretrained_tokenizer, normalize, piece_ids,
+                              pieces_of, read_term_record, record_matches, save_tokenizer_dir, term_record,
+                              text_model_dir, train_scratch_tokenizer, words_of)
 
 MIN_PIECES = 3  # a word in this many pieces or more counts as fragmented
 MIN_COUNT = 2  # "auto" skips terms seen once: one caption is too little to learn a row from
-RECORD_VERSION = 1
-
-
-# ---------------------------------------------------------------------------------------------
-# how a tokenizer reads words
-
-
-def _backend(tokenizer):
-    backend = getattr(tokenizer, "backend_tokenizer", None)
-    if backend is None:
-        raise AlignError(f"the tokenizer {type(tokenizer).__name__} has no fast (tokenizers) backend",
-                         "use a model directory whose tokenizer.json the tokenizers library can load")
-    return backend
-
-
-def normalize(tokenizer, text: str) -> str:
-    normalizer = _backend(tokenizer).normalizer
-    return normalizer.normalize_str(text) if normalizer is not None else text
-
-
-def words_of(tokenizer, text: str) -> list[str]:
-    """The caption's words as the tokenizer's normaliser and pre-tokeniser see them (surface form)."""
-    normalized = normalize(tokenizer, text)
-    pre = _backend(tokenizer).pre_tokenizer
-    if pre is None:
-        return normalized.split()
-    # offsets point into the normalised text, so byte-level markers never leak into a term
-    return [normalized[a:b].strip() for _, (a, b) in pre.pre_tokenize_str(normalized) if normalized[a:b].strip()]
-
-
-def pieces_of(tokenizer, term: str) -> list[str]:
-    """The pieces the tokenizer's model splits ``term`` into (one token for an added whole term)."""
-    added = tokenizer.get_added_vocab()
-    normalized = normalize(tokenizer, term).strip()
-    if normalized in added:
-        return [normalized]
-    backend = _backend(tokenizer)
-    pieces: list[str] = []
-    pre = backend.pre_tokenizer
-    chunks = [c for c, _ in pre.pre_tokenize_str(normalized)] if pre is not None else normalized.split()
-    for chunk in chunks:
-        pieces += [tok.value for tok in backend.model.tokenize(chunk)]
-    return pieces
-
-
-def piece_ids(tokenizer, term: str) -> list[int]:
-    return [int(i) for i in tokenizer.convert_tokens_to_ids(pieces_of(tokenizer, term))]
 
 
 def is_term(word: str) -> bool:
@@ -165,8 +117,6 @@ def mine_terms(tokenizer, captions: Sequence[str], cap: int, min_pieces: int = M
 def vocab_report(captions: Sequence[str], base_tokenizer, *, cap: int = 64, scratch_vocab_size: int = 2000,
                  top: int = 20, text_model: str = "") -> dict:
     """The base tokenizer beside itself extended with the mined terms and beside a caption-trained one."""
-    from .text import train_scratch_tokenizer
-
     base = tokenizer_stats(base_tokenizer, captions, "base")
     mined = mine_terms(base_tokenizer, captions, cap)
     extended_tokenizer = copy_tokenizer(base_tokenizer)
@@ -231,14 +181,7 @@ def report_tables(report: dict, top: int = 20):
 
 
 # ---------------------------------------------------------------------------------------------
-# extending a tokenizer and an embedding matrix
-
-
-def copy_tokenizer(tokenizer):
-    """An independent copy (adding tokens to it leaves the original alone)."""
-    with tempfile.TemporaryDirectory() as tmp:
-        tokenizer.save_pretrained(tmp)
-        return type(tokenizer).from_pretrained(tmp)
+# a tower's added terms: choosing them, their embedding rows, the run's record of them
 
 
 def resolve_terms(tokenizer, terms: Sequence[str]) -> list[str]:
@@ -252,23 +195,6 @@ def resolve_terms(tokenizer, terms: Sequence[str]) -> list[str]:
             continue  # already one token: nothing to teach
         out.append(term)
     return out
-
-
-def extend_tokenizer(tokenizer, terms: Sequence[str]) -> list[int]:
-    """Add each term as a whole-word token; returns the new ids in the order of ``terms``.
-
-    ``single_word`` keeps a term from matching inside a longer word ("zellige" in "zelliges");
-    ``normalized`` matches it after the tokenizer's own normalisation (lower-casing, accents).
-    """
-    from tokenizers import AddedToken
-
-    before = len(tokenizer)
-    tokenizer.add_tokens([AddedToken(t, single_word=True, normalized=True) for t in terms])
-    ids = [int(i) for i in tokenizer.convert_tokens_to_ids(list(terms))]
-    if len(tokenizer) != before + len(terms) or ids != list(range(before, before + len(terms))):
-        raise AlignError(f"the tokenizer did not take the {len(terms)} new terms as new tokens",
-                         "check text.new_tokens for terms the tokenizer already holds")
-    return ids
 
 
 def mean_piece_rows(weight: torch.Tensor, base_tokenizer, terms: Sequence[str]) -> torch.Tensor:
@@ -293,53 +219,55 @@ def extend_embeddings(encoder: torch.nn.Module, base_tokenizer, terms: Sequence[
     weight[torch.tensor(list(new_ids))] = mean_piece_rows(old, base_tokenizer, terms).to(weight.dtype)
 
 
+def chosen_terms(cfg: TextConfig, tokenizer, train_captions: Sequence[str] | None) -> list[str]:
+    """The recipe's terms (``text.new_tokens``: a list, or "auto" to mine the captions), resolved."""
+    if cfg.new_tokens == "auto":
+        if not train_captions:
+            raise AlignError("text.new_tokens = \"auto\" mines the training captions, and none were given",
+                             "train the run first (align train); evaluate and resume reuse its tokenizer folder")
+        return resolve_terms(tokenizer, mine_terms(tokenizer, train_captions, cfg.new_tokens_cap))
+    return resolve_terms(tokenizer, cfg.new_tokens)
+
+
+def domain_vocabulary(cfg: TextConfig, encoder: torch.nn.Module, base_tokenizer, base_model: str,
+                      train_captions: Sequence[str] | None, tokenizer_dir: Path | None):
+    """Extend a pretrained tokenizer and embedding matrix; returns (tokenizer, new token ids).
+
+    A vocabulary stored by this recipe in ``tokenizer_dir`` is reused (resume, evaluate): mined terms
+    depend on the training captions, so they are never re-mined behind a checkpoint's back.
+    """
+    record = read_term_record(tokenizer_dir)
+    if record_matches(record, cfg.new_tokens, cfg.new_tokens_cap, base_model):
+        terms, new_ids = record["terms"], record["token_ids"]
+        tokenizer = load_pretrained_tokenizer(Path(tokenizer_dir))
+        if [int(i) for i in tokenizer.convert_tokens_to_ids(terms)] != new_ids or len(tokenizer) != len(
+                base_tokenizer) + len(terms):
+            raise AlignError(f"the tokenizer in {tokenizer_dir} does not match its {len(terms)} recorded terms",
+                             "the run folder was edited; train the run again")
+    else:
+        if record is not None and not train_captions:
+            raise AlignError(f"the vocabulary in {tokenizer_dir} was made by another recipe",
+                             "evaluate or resume with the run's own recipe.resolved.toml")
+        terms = chosen_terms(cfg, base_tokenizer, train_captions)
+        tokenizer = copy_tokenizer(base_tokenizer)
+        new_ids = extend_tokenizer(tokenizer, terms)
+        if tokenizer_dir is not None:
+            save_tokenizer_dir(tokenizer, Path(tokenizer_dir),
+                               term_record(cfg.new_tokens, cfg.new_tokens_cap, terms, new_ids, base_tokenizer,
+                                           base_model))
+    if terms:
+        extend_embeddings(encoder, base_tokenizer, terms, new_ids)
+    return tokenizer, new_ids
+
+
 # ---------------------------------------------------------------------------------------------
-# the record beside the extended tokenizer
-
-
-def term_record(spec, cap: int, terms: Sequence[str], new_ids: Sequence[int], base_tokenizer, base_model: str) -> dict:
-    return {"version": RECORD_VERSION, "spec": spec, "cap": cap, "base_model": base_model,
-            "base_vocab_size": len(base_tokenizer), "terms": list(terms), "token_ids": list(new_ids),
-            "pieces": [pieces_of(base_tokenizer, t) for t in terms]}
-
-
-def read_term_record(tokenizer_dir: Path | None) -> dict | None:
-    if tokenizer_dir is None or not (Path(tokenizer_dir) / A.NEW_TOKENS).is_file():
-        return None
-    record = json.loads((Path(tokenizer_dir) / A.NEW_TOKENS).read_text(encoding="utf-8"))
-    return record if record.get("version") == RECORD_VERSION else None
-
-
-def record_matches(record: dict | None, spec, cap: int, base_model: str) -> bool:
-    """Whether a stored vocabulary was made by this recipe (so resume/evaluate may reuse it)."""
-    return (record is not None and record["spec"] == spec and record["base_model"] == base_model
-            and (spec != "auto" or record["cap"] == cap))
-
-
-def save_tokenizer_dir(tokenizer, tokenizer_dir: Path, record: dict | None) -> None:
-    """Write the tokenizer (and its term record) to a temporary folder, then swap it into place."""
-    tokenizer_dir = Path(tokenizer_dir)
-    tokenizer_dir.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(dir=tokenizer_dir.parent, prefix=f".{tokenizer_dir.name}."))
-    tokenizer.save_pretrained(str(tmp))
-    if record is not None:
-        (tmp / A.NEW_TOKENS).write_text(json.dumps(record, indent=2) + "\n", encoding="utf-8")
-    old = tokenizer_dir.with_name(f".{tokenizer_dir.name}.old.{os.getpid()}")
-    if tokenizer_dir.exists():
-        os.replace(tokenizer_dir, old)
-    os.replace(tmp, tokenizer_dir)
-    shutil.rmtree(old, ignore_errors=True)
+# align vocab
 
 
 def load_base_tokenizer(text_model: str = ""):
     """The tokenizer of a local pretrained encoder (empty = the offline default model)."""
-    from transformers import AutoTokenizer
-
-    from .recipe import TextConfig
-    from .text import text_model_dir
-
     path = text_model_dir(TextConfig(model=text_model))
-    return AutoTokenizer.from_pretrained(str(path), local_files_only=True), str(path)
+    return load_pretrained_tokenizer(path), str(path)
 
 
 def shards_vocab_report(shards_dir: str | Path, split: str = "train", text_model: str = "", cap: int = 64,
