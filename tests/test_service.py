@@ -359,10 +359,17 @@ def test_token_needed_for_reads_beyond_loopback(tmp_path):
     settings = Settings(home=home.root, host="0.0.0.0")
     with TestClient(create_app(settings, token, start_workers=False)) as client:
         assert client.get("/jobs").status_code == 401
-        assert client.get("/").status_code == 401
+        assert client.get("/health").status_code == 401
         assert client.get("/jobs", headers={"Authorization": f"Bearer {token}"}).status_code == 200
-        assert client.get(f"/?token={token}").status_code == 200
-        assert client.post(f"/jobs?token={token}", json={}).status_code == 401  # query tokens only for reads
+        # the token travels only as a header: one in the address is not read, for reads or writes
+        assert client.get(f"/jobs?token={token}").status_code == 401
+        assert client.get(f"/jobs/1/artifacts/recipe.resolved.toml?token={token}").status_code == 401
+        assert client.post(f"/jobs?token={token}", json={}).status_code == 401
+        # the status page is static and holds no data: it loads without the token, then asks for it
+        page = client.get("/")
+        assert page.status_code == 200 and 'id="login"' in page.text and token not in page.text
+        assert "form-action 'none'" in page.headers["content-security-policy"]
+        assert client.post("/", json={}).status_code == 401  # public for reading only
 
 
 def test_jobs_cli_talks_to_the_service(service, reference_job):

@@ -1,9 +1,12 @@
-"""The status page in headless Chromium (Debian's chromium package) shows a submitted job and its charts.
+"""The status page in headless Chromium (Debian's chromium package): the token, the job and its charts.
 
-A real ``align serve`` runs one small job (a scratch text tower, 10 steps, a log line per step) on
-scikit-learn's digits. Chromium loads ``/``, runs its JavaScript against the live API, and the
-test reads the DOM it dumps (the job row, the SVG loss chart with one point per logged step, the
-recall chart) and writes a screenshot to tests/artifacts/status-page.png.
+A real ``align serve``, bound beyond loopback so that reads need the token, runs one small job (a
+scratch text tower, 10 steps, a log line per step) on scikit-learn's digits. Chromium, driven over
+the DevTools protocol, opens ``/``: the page asks for the token, the test types it into the form,
+and the page shows the job. The test reads the DOM (the job row, the SVG loss chart with one point
+per logged step, the recall chart), the address and history (no token in either), the requests the
+page sent (the token in the Authorization header of every API call, never in a URL), and writes a
+screenshot to tests/artifacts/status-page.png.
 """
 from __future__ import annotations
 
@@ -13,7 +16,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from service_harness import REPO, Service, chromium, run_chromium
+from service_harness import REPO, Browser, Service, chromium
 
 SCREENSHOT = REPO / "tests" / "artifacts" / "status-page.png"
 PAGE_RECIPE = """
@@ -41,11 +44,15 @@ LOSS_BLUE = (0x2F, 0x6F, 0xDF)  # the loss line's colour in align/service/page.p
 
 pytestmark = pytest.mark.skipif(chromium() is None, reason="needs Debian's chromium package (.ci/run installs it)")
 
+HAS_JOB_ROW = 'document.querySelector("#jobs tr[data-job]") !== null'
+FORM_SHOWN = "!document.getElementById('login').hidden"
+
 
 @pytest.fixture(scope="module")
 def finished_job(small_digits_shards, tmp_path_factory):
     root = tmp_path_factory.mktemp("page")
-    service = Service(root / "home", [small_digits_shards.parent])
+    # beyond loopback every read needs the token, so the page has to ask for it
+    service = Service(root / "home", [small_digits_shards.parent], ["--host", "0.0.0.0"])
     service.start()
     try:
         with service.client() as http:
@@ -60,13 +67,86 @@ def finished_job(small_digits_shards, tmp_path_factory):
         service.close()
 
 
-def test_status_page_shows_the_job_and_its_charts(finished_job):
+def _type_token(browser: Browser, token: str) -> None:
+    browser.evaluate(f"document.getElementById('token').value = {token!r}; "
+                     "document.querySelector('#login button').click()")
+
+
+def _history_urls(browser: Browser) -> list[str]:
+    return [entry["url"] for entry in browser.call("Page.getNavigationHistory")["entries"]]
+
+
+def test_status_page_asks_for_the_token_once_and_shows_the_job_and_its_charts(finished_job):
     service, job, records, root = finished_job
     assert len(records) == 10
+    browser = Browser(root / "chromium")
+    try:
+        browser.goto(service.url + "/")
+        # no token yet: the page loads (it holds no data) and asks for it
+        browser.wait_for(FORM_SHOWN, 30, "the token form")
+        assert browser.evaluate(HAS_JOB_ROW) is False
+        asked = browser.requests()
+        assert any(r["url"].endswith("/jobs") and "Authorization" not in r["headers"] for r in asked)
 
-    dom = run_chromium(service.url + "/", root / "chromium-dom", "--dump-dom")
-    assert dom.returncode == 0, dom.stderr[-2000:]
-    html = dom.stdout
+        _type_token(browser, service.token)
+        browser.wait_for(f"{HAS_JOB_ROW} && document.querySelectorAll('svg[data-chart]').length >= 2", 60,
+                         "the job row and its charts")
+        # the token is in no address and no history entry; this tab keeps it, in sessionStorage
+        assert browser.evaluate("location.href") == service.url + "/"
+        assert all(service.token not in url for url in _history_urls(browser))
+        assert browser.evaluate("sessionStorage.getItem('align-service-token')") == service.token
+        assert browser.evaluate("document.getElementById('token').value") == ""
+        # every API call carried it as a header, none in its URL
+        sent = [r for r in browser.requests() if r["url"].startswith(service.url + "/jobs")]
+        assert sent and all(r["headers"].get("Authorization") == f"Bearer {service.token}" for r in sent)
+        assert all(service.token not in r["url"] for r in sent)
+
+        html = browser.evaluate("document.documentElement.outerHTML")
+        _check_job_and_charts(html, job, records)
+        assert service.token not in html
+
+        # a reload in the same tab keeps the token: the page does not ask again
+        browser.evaluate("window.beforeReload = true")
+        browser.call("Page.reload")
+        browser.wait_for(f"window.beforeReload === undefined && document.readyState === 'complete' && {HAS_JOB_ROW}",
+                         60, "the reloaded page")
+        assert browser.evaluate(FORM_SHOWN) is False
+
+        SCREENSHOT.parent.mkdir(parents=True, exist_ok=True)
+        SCREENSHOT.unlink(missing_ok=True)
+        browser.wait_for("document.querySelectorAll('svg[data-chart] polyline').length >= 1", 30, "the loss line")
+        browser.screenshot(SCREENSHOT)
+    finally:
+        browser.close()
+    image = np.asarray(Image.open(SCREENSHOT).convert("RGB")).astype(int)  # (900, 1200, 3)
+    assert image.shape == (900, 1200, 3)
+    blue = (np.abs(image - np.array(LOSS_BLUE)).sum(-1) < 40).sum()
+    assert blue > 100, f"the loss line is not on the screenshot ({blue} pixels of its colour)"
+    print(f"\nstatus page screenshot: {SCREENSHOT}")
+
+
+def test_status_page_forgets_a_refused_token_and_ignores_one_in_the_address(finished_job):
+    service, job, records, root = finished_job
+    browser = Browser(root / "chromium-refused")
+    try:
+        # an old-style link: the token in the address is neither used nor left in the address bar
+        browser.goto(service.url + "/?token=" + service.token)
+        browser.wait_for(FORM_SHOWN, 30, "the token form")
+        assert browser.evaluate("location.href") == service.url + "/"
+        assert all(service.token not in url for url in _history_urls(browser))
+        assert browser.evaluate(HAS_JOB_ROW) is False
+
+        _type_token(browser, "not-the-token-0000000000")
+        browser.wait_for("document.getElementById('login-message').textContent.includes('refused')", 30,
+                         "the refusal")
+        assert browser.evaluate(FORM_SHOWN) is True
+        assert browser.evaluate("sessionStorage.getItem('align-service-token')") is None
+        assert browser.evaluate(HAS_JOB_ROW) is False
+    finally:
+        browser.close()
+
+
+def _check_job_and_charts(html: str, job: dict, records: list[dict]) -> None:
     row = re.search(rf'<tr data-job="{job["id"]}" data-state="finished">(.*?)</tr>', html, re.S)
     assert row, html[:3000]
     assert "page-demo" in row.group(1) and "10 / 10" in row.group(1)
@@ -82,13 +162,3 @@ def test_status_page_shows_the_job_and_its_charts(finished_job):
     recall_svg = re.search(rf'<svg[^>]*data-chart="recall" data-job="{job["id"]}" data-points="(\d+)"', html)
     assert recall_svg and int(recall_svg.group(1)) == 6
     assert 'data-series="text→image"' in html and 'data-series="image→text"' in html
-
-    SCREENSHOT.parent.mkdir(parents=True, exist_ok=True)
-    SCREENSHOT.unlink(missing_ok=True)
-    shot = run_chromium(service.url + "/", root / "chromium-shot", f"--screenshot={SCREENSHOT}")
-    assert shot.returncode == 0 and SCREENSHOT.is_file(), shot.stderr[-2000:]
-    image = np.asarray(Image.open(SCREENSHOT).convert("RGB")).astype(int)  # (900, 1200, 3)
-    assert image.shape == (900, 1200, 3)
-    blue = (np.abs(image - np.array(LOSS_BLUE)).sum(-1) < 40).sum()
-    assert blue > 100, f"the loss line is not on the screenshot ({blue} pixels of its colour)"
-    print(f"\nstatus page screenshot: {SCREENSHOT}")

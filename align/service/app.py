@@ -1,6 +1,6 @@
 """The HTTP API (FastAPI on uvicorn) and ``serve()``, behind ``align serve``.
 
-    GET  /                          the status page
+    GET  /                          the status page (static; it asks for the token and sends it as a header)
     GET  /health                    liveness, worker count
     POST /jobs                      submit (recipe TOML or a recipe file name, overrides, data) -> job
     GET  /jobs                      the job list, newest first
@@ -13,7 +13,8 @@
     POST /exports/{name}/embed      {"texts": [...]} -> L2-normalised embeddings
     POST /exports/{name}/search     {"texts": [...], "k": 10} -> top-k of the export's gallery index
 
-Errors are JSON ``{"error": message, "hint": how to fix}``: 401 no token, 403 a path outside the
+The token goes in ``Authorization: Bearer <token>`` only, never in an address. Errors are JSON
+``{"error": message, "hint": how to fix}``: 401 no token, 403 a path outside the
 roots, 404 unknown, 409 wrong state, 413 body too large, 422 a bad recipe or body (naming the field).
 """
 from __future__ import annotations
@@ -43,6 +44,7 @@ from .store import FINAL_STATES, JobStore
 MAX_TEXTS = 256  # texts per embed / search call
 MAX_TEXT_CHARS = 2000
 MAX_K = 1000
+STATUS_PAGE_PATH = "/"  # served without the token: static HTML that asks for it (see page.py)
 
 
 class Conflict(AlignError):
@@ -134,11 +136,13 @@ def create_app(settings: Settings, token: str, start_workers: bool = True) -> Fa
             raise NotFound(f"no job {job_id}", "list the jobs with GET /jobs")
         return job
 
-    @app.get("/", response_class=HTMLResponse)
+    @app.get(STATUS_PAGE_PATH, response_class=HTMLResponse)
     def status_page():
+        # form-action 'none': the token form is handled by the script and never submitted anywhere
         return HTMLResponse(STATUS_PAGE, headers={"Content-Security-Policy": "default-src 'self'; "
-                                                  "script-src 'unsafe-inline'; style-src 'unsafe-inline'",
-                                                  "Cache-Control": "no-store"})
+                                                  "script-src 'unsafe-inline'; style-src 'unsafe-inline'; "
+                                                  "form-action 'none'",
+                                                  "Cache-Control": "no-store", "Referrer-Policy": "no-referrer"})
 
     @app.get("/health")
     def health():
@@ -217,7 +221,7 @@ def create_app(settings: Settings, token: str, start_workers: bool = True) -> Fa
         return exports.search(name, request.texts, request.k, request.backend)
 
     app.add_middleware(Guard, token=token, token_for_reads=settings.token_for_reads, check_host=settings.loopback,
-                       max_body=settings.max_body_bytes)
+                       max_body=settings.max_body_bytes, public_pages=(STATUS_PAGE_PATH,))
     app.state.store = store
     return app
 
@@ -258,7 +262,7 @@ def serve(settings: Settings) -> None:
     if not settings.loopback:
         print("align: bound beyond loopback, so every call needs the token", file=sys.stderr, flush=True)
     try:
-        # no access log: GET URLs may carry ?token= (status page, downloads) and logs get shared
+        # no access log: request paths name jobs, exports and artifact files, and logs get shared
         uvicorn.run(app, host=settings.host, port=settings.port, log_level="warning", access_log=False,
                     timeout_graceful_shutdown=5)
     finally:

@@ -2,9 +2,14 @@
 
 It polls ``GET /jobs`` and each shown job's ``GET /jobs/<id>/metrics`` and draws, per job, the
 training loss against the step and recall@K both ways (once the job is evaluated) as inline SVG.
-Job text is put in with ``textContent``, never as HTML. When the service needs the token for
-reads, open the page as ``/?token=...``: the script sends it as a header and drops it from the
-address bar.
+Job text is put in with ``textContent``, never as HTML.
+
+The token. When the service needs it for reads (bound beyond loopback), the page asks for it once
+in a form: the field has no ``name`` and the form is never submitted (the script handles it, and
+the page's CSP says ``form-action 'none'``), so the token never becomes part of an address, the
+browser history or a log. It is kept in the tab's ``sessionStorage`` (gone when the tab closes)
+and sent as ``Authorization: Bearer`` on every call. A refused token is forgotten and asked for
+again.
 """
 from __future__ import annotations
 
@@ -34,11 +39,23 @@ STATUS_PAGE = r"""<!doctype html>
   .job .charts { display: flex; gap: 10px; }
   svg text { font-size: 11px; fill: var(--muted); }
   svg .title { font-size: 12px; fill: var(--ink); font-weight: 600; }
+  #login { background: #fff; border: 1px solid var(--line); border-radius: 6px; padding: 12px 14px; margin-bottom: 16px; max-width: 640px; }
+  #login input { font: inherit; width: 26em; padding: 3px 6px; }
+  #login .note { color: var(--muted); margin: 6px 0 0; }
+  #login-message { color: #a12622; margin-bottom: 6px; }
 </style>
 </head>
 <body>
 <h1>align service</h1>
 <div id="summary">loading…</div>
+<form id="login" hidden autocomplete="off">
+  <div id="login-message"></div>
+  <label for="token">Service token</label>
+  <input id="token" type="password" autocomplete="off" spellcheck="false">
+  <button type="submit">Show jobs</button>
+  <p class="note">It is in HOME/token on the service's machine. This tab keeps it until it closes and sends it
+  with each call as a header, never in the address.</p>
+</form>
 <table id="jobs">
   <thead><tr><th>id</th><th>name</th><th>state</th><th>phase</th><th>step</th><th>loss</th><th>pairs/s</th>
   <th>time left</th><th>R@1 text→image</th></tr></thead>
@@ -47,18 +64,47 @@ STATUS_PAGE = r"""<!doctype html>
 <div id="charts"></div>
 <script>
 "use strict";
-const params = new URLSearchParams(location.search);
-const token = params.get("token");
-if (token) { history.replaceState(null, "", location.pathname); }
-const headers = token ? { "Authorization": "Bearer " + token } : {};
 const SHOWN = 8;            // jobs drawn as charts (newest first)
 const NS = "http://www.w3.org/2000/svg";
+const TOKEN_KEY = "align-service-token";  // sessionStorage: this tab only, gone when it closes
+
+// An old link may still carry ?token=: take it out of the address bar and this history entry, unused.
+if (new URLSearchParams(location.search).has("token")) { history.replaceState(null, "", location.pathname); }
+let token = sessionStorage.getItem(TOKEN_KEY);
+
+class NeedsToken extends Error {}
 
 async function getJSON(url) {
+  const headers = token ? { "Authorization": "Bearer " + token } : {};
   const response = await fetch(url, { headers, cache: "no-store" });
+  if (response.status === 401) {
+    throw new NeedsToken(token ? "The service refused that token." : "This service needs its token.");
+  }
   if (!response.ok) { throw new Error(url + ": " + response.status); }
   return response.json();
 }
+
+const login = document.getElementById("login");
+
+function askForToken(message) {
+  token = null;
+  sessionStorage.removeItem(TOKEN_KEY);
+  document.getElementById("login-message").textContent = message;
+  login.hidden = false;
+  document.getElementById("token").focus();
+}
+
+login.addEventListener("submit", event => {
+  event.preventDefault();  // never submitted: the token stays out of every address
+  const field = document.getElementById("token");
+  const given = field.value.trim();
+  field.value = "";
+  if (!given) { return; }
+  token = given;
+  sessionStorage.setItem(TOKEN_KEY, token);
+  login.hidden = true;
+  refresh();
+});
 
 function el(tag, attrs, text) {
   const node = document.createElement(tag);
@@ -170,6 +216,7 @@ async function jobCard(job) {
 }
 
 async function refresh() {
+  if (!login.hidden) { return; }  // waiting for the token
   try {
     const { jobs } = await getJSON("/jobs");
     const body = document.querySelector("#jobs tbody");
@@ -182,6 +229,11 @@ async function refresh() {
     const cards = await Promise.all(jobs.slice(0, SHOWN).map(jobCard));
     document.getElementById("charts").replaceChildren(...cards);
   } catch (err) {
+    if (err instanceof NeedsToken) {
+      document.getElementById("summary").textContent = "waiting for the service token";
+      askForToken(err.message);
+      return;
+    }
     document.getElementById("summary").textContent = "cannot reach the service: " + err.message;
   }
 }

@@ -3,8 +3,10 @@
 ``Guard`` is a plain ASGI middleware in front of every route, so no route can forget a check:
 
 - a mutating call (anything but GET/HEAD/OPTIONS) needs ``Authorization: Bearer <token>``; when
-  the service is bound beyond loopback, every call does (a GET may carry ``?token=`` instead, so
-  the status page and downloads open in a browser);
+  the service is bound beyond loopback, every call does. The token travels only in that header,
+  never in an address (addresses end up in browser history, logs and Referer headers); the one
+  exception to "every call" is the status page itself (``public_pages``), static HTML that holds
+  no data and asks for the token, then sends it as the header on each of its calls;
 - bound to loopback, the Host header must name loopback (a web page that rebinds its own domain
   name to 127.0.0.1 cannot read the API through the browser);
 - a body over the limit is refused before any route sees it (it is read into memory by the guard,
@@ -20,7 +22,6 @@ import hmac
 import json
 import re
 from pathlib import Path
-from urllib.parse import parse_qs
 
 from ..errors import AlignError
 
@@ -80,12 +81,14 @@ def token_matches(expected: str, given: str | None) -> bool:
 class Guard:
     """ASGI middleware: Host check, token check and body limit, before any route runs."""
 
-    def __init__(self, app, *, token: str, token_for_reads: bool, check_host: bool, max_body: int):
+    def __init__(self, app, *, token: str, token_for_reads: bool, check_host: bool, max_body: int,
+                 public_pages: tuple[str, ...] = ()):
         self.app = app
         self.token = token
         self.token_for_reads = token_for_reads
         self.check_host = check_host
         self.max_body = max_body
+        self.public_pages = public_pages  # paths a GET may read without the token (pages holding no data)
 
     async def __call__(self, scope, receive, send):
         if scope["type"] != "http":
@@ -96,8 +99,9 @@ class Guard:
         if self.check_host and _host_name(headers.get("host", "")) not in LOOPBACK_NAMES:
             return await _refuse(send, 403, "the Host header does not name this machine's loopback",
                                  "call the service as http://127.0.0.1:PORT")
-        needs_token = method not in SAFE_METHODS or self.token_for_reads
-        if needs_token and not token_matches(self.token, _given_token(headers, scope, method)):
+        public = method in ("GET", "HEAD") and scope.get("path") in self.public_pages
+        needs_token = method not in SAFE_METHODS or (self.token_for_reads and not public)
+        if needs_token and not token_matches(self.token, _given_token(headers)):
             return await _refuse(send, 401, "this call needs the service token",
                                  "send the header 'Authorization: Bearer <token>'; the token is in HOME/token "
                                  "(align jobs reads it from there)", {"www-authenticate": "Bearer"})
@@ -142,14 +146,11 @@ def _host_name(host: str) -> str:
     return host.rsplit(":", 1)[0] if host.count(":") == 1 else host
 
 
-def _given_token(headers: dict, scope, method: str) -> str | None:
+def _given_token(headers: dict) -> str | None:
+    """The bearer token of the Authorization header; a token in the query string is not read."""
     auth = headers.get("authorization", "")
     if auth.lower().startswith("bearer "):
         return auth[7:].strip()
-    if method in ("GET", "HEAD"):
-        values = parse_qs(scope.get("query_string", b"").decode("latin-1")).get("token")
-        if values:
-            return values[0]
     return None
 
 
