@@ -34,7 +34,6 @@ the global batch; every process then computes the same loss over all B rows.
 from __future__ import annotations
 
 import hashlib
-import json
 import math
 
 import torch
@@ -43,7 +42,7 @@ import torch.nn.functional as F
 from torch import Tensor, nn
 from torch.utils.checkpoint import checkpoint
 
-from .errors import AlignError, RecipeError
+from .labels import label_group
 
 POSITIVE_MODES = ("pair", "caption", "caption+labels")
 
@@ -65,13 +64,13 @@ def positive_ids(captions: list[str], labels: list[dict] | None, mode: str) -> t
     """Ids that mark the in-batch positives for ``mode`` (the recipe's ``loss.positives``).
 
     Returns ``(caption_ids, label_ids)``, LongTensors of shape (B,). Ids are hashes of the caption
-    text / of the labels as canonical JSON, so they agree across processes and can be gathered
-    into the global batch with ``gather_ids``. ``mode="pair"`` gives caption ids of -1 (only the
-    pair itself is positive); ``label_ids`` is None unless mode is ``caption+labels`` and labels
-    are given; an empty labels dict gets -1 (shares labels with nobody).
+    text / of the labels' canonical text (``align.labels.label_group``), so they agree across
+    processes and can be gathered into the global batch with ``gather_ids``. ``mode="pair"`` gives
+    caption ids of -1 (only the pair itself is positive); ``label_ids`` is None unless mode is
+    ``caption+labels`` and labels are given; an empty labels dict gets -1 (shares labels with nobody).
     """
     if mode not in POSITIVE_MODES:
-        raise RecipeError(f"loss.positives = {mode!r} is not one of {', '.join(map(repr, POSITIVE_MODES))}")
+        raise ValueError(f"positives mode {mode!r} is not one of {', '.join(map(repr, POSITIVE_MODES))}")
     if labels is not None and len(labels) != len(captions):
         raise ValueError(f"{len(captions)} captions but {len(labels)} label dicts")
     if mode == "pair":
@@ -79,9 +78,8 @@ def positive_ids(captions: list[str], labels: list[dict] | None, mode: str) -> t
     caption_ids = torch.tensor([_stable_id(_canonical_caption(c)) for c in captions], dtype=torch.long)
     if mode == "caption" or labels is None:
         return caption_ids, None
-    label_ids = torch.tensor(
-        [_stable_id(json.dumps(lab, sort_keys=True, separators=(",", ":"))) if lab else -1 for lab in labels],
-        dtype=torch.long)
+    groups = [label_group(lab) for lab in labels]
+    label_ids = torch.tensor([-1 if group is None else _stable_id(group) for group in groups], dtype=torch.long)
     return caption_ids, label_ids
 
 
@@ -168,7 +166,7 @@ def _check_inputs(text: Tensor, image: Tensor, caption_ids: Tensor | None,
 
 def _check_block_size(block_size: int) -> int:
     if not isinstance(block_size, int) or block_size < 0:
-        raise RecipeError(f"loss.block_size must be 0 (all at once) or a positive number of rows, got {block_size!r}")
+        raise ValueError(f"block_size must be 0 (all at once) or a positive number of rows, got {block_size!r}")
     return block_size
 
 
@@ -195,9 +193,9 @@ class SoftmaxContrastiveLoss(nn.Module):
                  learnable: bool = True, block_size: int = 0):
         super().__init__()
         if not 0 < init_temperature:
-            raise RecipeError(f"loss.init_temperature must be positive, got {init_temperature}")
+            raise ValueError(f"init_temperature must be positive, got {init_temperature}")
         if not max_logit_scale > 0:
-            raise RecipeError(f"loss.max_logit_scale must be positive, got {max_logit_scale}")
+            raise ValueError(f"max_logit_scale must be positive, got {max_logit_scale}")
         self.max_logit_scale = float(max_logit_scale)
         self.block_size = _check_block_size(block_size)
         _scalar(self, "log_scale", math.log(1.0 / init_temperature), learnable)
@@ -237,7 +235,7 @@ class SigmoidContrastiveLoss(nn.Module):
                  block_size: int = 0):
         super().__init__()
         if not init_scale > 0:
-            raise RecipeError(f"loss.init_sigmoid_scale must be positive, got {init_scale}")
+            raise ValueError(f"init_scale must be positive, got {init_scale}")
         self.block_size = _check_block_size(block_size)
         _scalar(self, "log_scale", math.log(init_scale), learnable)
         _scalar(self, "bias", init_bias, learnable)
@@ -271,7 +269,7 @@ def build_loss(cfg) -> nn.Module:
     if cfg.kind == "sigmoid":
         return SigmoidContrastiveLoss(init_scale=cfg.init_sigmoid_scale, init_bias=cfg.init_sigmoid_bias,
                                       learnable=cfg.learn_temperature, block_size=cfg.block_size)
-    raise RecipeError(f"loss.kind = {cfg.kind!r} is not one of 'softmax', 'sigmoid'")
+    raise ValueError(f"loss kind {cfg.kind!r} is not one of 'softmax', 'sigmoid'")
 
 
 # --------------------------------------------------------------------------- distributed
@@ -288,9 +286,8 @@ def _check_equal_slices(x: Tensor, world: int) -> None:
     dist.all_gather(sizes, size)
     counts = [int(s) for s in sizes]
     if len(set(counts)) > 1:
-        raise AlignError(f"processes hold different local batch sizes {counts}; the global batch needs "
-                         "equal slices", "drop the last incomplete batch, or make train.batch_size "
-                         "divisible by the number of processes")
+        raise ValueError(f"processes hold different local batch sizes {counts}; the global batch needs "
+                         "equal slices (a batch size divisible by the number of processes)")
 
 
 def gather_global(x: Tensor) -> Tensor:

@@ -19,7 +19,6 @@ import pytest
 import torch
 import torch.nn.functional as F
 
-from align.errors import RecipeError
 from align.loss import (SigmoidContrastiveLoss, SoftmaxContrastiveLoss, build_loss, gather_global,
                         gather_ids, positive_ids)
 from align.recipe import LossConfig
@@ -232,7 +231,7 @@ def test_positive_ids_modes():
     assert lab is None and cap[0] == cap[1]
     cap, lab = positive_ids(captions, labels, "pair")
     assert lab is None and (cap == -1).all()
-    with pytest.raises(RecipeError, match="loss.positives"):
+    with pytest.raises(ValueError, match="'labels' is not one of"):
         positive_ids(captions, labels, "labels")
 
 
@@ -343,11 +342,16 @@ def test_sigmoid_multi_positive_labels():
 # --------------------------------------------------------------------------- errors
 
 def test_bad_settings_and_inputs_say_what_is_wrong():
-    # Common practice: recipe mistakes name the recipe key; shape mistakes name both shapes.
-    with pytest.raises(RecipeError, match="loss.block_size"):
+    # Common practice: a bad setting names the parameter, shape mistakes name both shapes. The loss is
+    # pure: plain ValueErrors; the recipe names its own keys before any loss is built (test_recipe.py).
+    with pytest.raises(ValueError, match="block_size must be 0"):
         build_loss(LossConfig(block_size=-1))
-    with pytest.raises(RecipeError, match="loss.init_sigmoid_scale"):
+    with pytest.raises(ValueError, match="init_scale must be positive"):
         build_loss(LossConfig(kind="sigmoid", init_sigmoid_scale=0.0))
+    with pytest.raises(ValueError, match="max_logit_scale must be positive"):
+        build_loss(LossConfig(max_logit_scale=0.0))
+    with pytest.raises(ValueError, match="loss kind 'hinge'"):
+        build_loss(LossConfig(kind="hinge"))
     with pytest.raises(ValueError, match=r"\(4, 3\) and \(5, 3\)"):
         SoftmaxContrastiveLoss()(torch.zeros(4, 3), torch.zeros(5, 3))
     with pytest.raises(ValueError, match="caption_ids"):
