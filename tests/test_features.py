@@ -19,9 +19,9 @@ from rich.console import Console
 
 from align import artifacts as A
 from align.data.shards import iter_images, read_manifest
-from align.features import (AUGMENTATION, ViewSchedule, augmented_view, image_features, load_feature_cache,
-                            training_transform, view_batch)
+from align.features import AUGMENTATION, augmented_view, image_features, load_feature_cache, training_transform
 from align.recipe import VisionConfig
+from align.training import ViewSchedule, view_batch
 from align.vision import load_image_tower
 
 REPO = Path(__file__).resolve().parent.parent
@@ -211,7 +211,7 @@ def test_augmented_views_are_seeded_per_key_and_view(tower, small_digits_shards,
     assert three.fingerprint["augmentation"] == AUGMENTATION and plain.fingerprint["augmentation"] is None
     assert _entry_files(again.path) == _entry_files(three.path)  # seeded by (key, view): rebuilds agree
     views = np.asarray(three.array, dtype=np.float32)
-    assert np.abs(views[:, 0] - np.asarray(plain.array[:, 0], dtype=np.float32)).max() <= 1e-3  # view 0 = plain
+    assert np.array_equal(three.array[:, 0], plain.array[:, 0])  # view 0 is the plain entry's rows, bit for bit
     cos = lambda a, b: (a * b).sum(-1) / np.linalg.norm(a, axis=-1) / np.linalg.norm(b, axis=-1)  # noqa: E731
     assert np.median(cos(views[:, 1], views[:, 0])) < 0.999 and np.median(cos(views[:, 1], views[:, 2])) < 0.999
 
@@ -228,6 +228,28 @@ def test_augmented_views_are_seeded_per_key_and_view(tower, small_digits_shards,
     embedded = tower.embed_pixels(first[None]).numpy()[0]
     # same image, other batch mates: float16 storage (<= 2^-11, IEEE 754) plus float32 reordering noise
     assert np.abs(embedded - views[three.keys.index(key), 1]).max() <= 2e-3
+
+
+def test_plain_view_is_computed_once_however_many_views(tower, small_digits_shards, val_one_go, tmp_path):
+    # evaluation reads the plain entry, training the K-view one: the plain view runs through the
+    # tower once per image for both, the K-view entry taking its view 0 from the plain entry
+    chunks = -(-len(val_one_go.keys) // CHUNK)
+    before = tower.forward_passes
+    three = image_features(tower, small_digits_shards, "val", _cfg(), _console()[0], views=3, cache_dir=tmp_path)
+    assert tower.forward_passes - before == 3 * chunks  # per chunk: the plain view and two augmented ones
+    before = tower.forward_passes
+    console, out = _console()
+    plain = image_features(tower, small_digits_shards, "val", _cfg(), console, cache_dir=tmp_path)
+    assert tower.forward_passes == before and plain.build is None and "reusing cached val features" in out.getvalue()
+    assert _entry_files(plain.path) == _entry_files(val_one_go.path)  # the same bytes as a plain build alone
+    assert np.array_equal(three.array[:, 0], plain.array[:, 0])
+
+    # the other order: a plain entry already there, a K-view build runs the tower for views 1..K-1 only
+    before = tower.forward_passes
+    two = image_features(tower, small_digits_shards, "val", _cfg(), _console()[0], views=2, cache_dir=tmp_path)
+    assert tower.forward_passes - before == chunks
+    assert np.array_equal(two.array[:, 0], plain.array[:, 0]) and np.array_equal(two.array[:, 1], three.array[:, 1])
+    assert sorted(p.name for p in tmp_path.iterdir()) == sorted(f.path.name for f in (plain, two, three))
 
 
 def test_view_schedule_is_a_function_of_seed_and_epoch():
@@ -281,7 +303,7 @@ log_every = 1
 
 def test_training_samples_one_cached_view_per_epoch(small_digits_shards, tmp_path):
     from align.recipe import recipe_from_toml
-    from align.train import prepare_training_data, train
+    from align.training import prepare_training_data, train
 
     recipe = recipe_from_toml(TRAIN_WITH_VIEWS, [f"data.shards={json.dumps(str(small_digits_shards))}",
                                                  f"vision.feature_cache={json.dumps(str(tmp_path / 'cache'))}"])
