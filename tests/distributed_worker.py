@@ -25,14 +25,14 @@ from rich.console import Console  # noqa: E402
 
 from align.checkpoint import latest_checkpoint  # noqa: E402
 from align.recipe import recipe_from_toml  # noqa: E402
-from align.train import _accelerator, shared_training_data, train  # noqa: E402
+from align.training import shared_training_data, start_accelerator, train  # noqa: E402
 
 
 def main(spec_path: str) -> None:
     spec = json.loads(Path(spec_path).read_text())
     out = Path(spec["out"])
     console = Console(stderr=True, quiet=True)
-    accelerator = _accelerator()  # torchrun's env -> accelerate starts the gloo group
+    accelerator = start_accelerator()  # torchrun's env -> accelerate starts the gloo group
     rank = accelerator.process_index
     data = None
     report = {"rank": rank, "world": accelerator.num_processes,

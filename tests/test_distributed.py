@@ -7,7 +7,7 @@ The reference is the single-process run of the same recipe: that is what "the lo
 batch" means (Zhai et al. 2022 compare exactly this global loss against per-device ones).
 
 Dropout stays on (MiniLM's p = 0.1). Masks are drawn per chunk from a seed fixed by the chunk's
-position in the global batch (align/step.py), so a process holding rows 8..15 of a batch of 16 draws
+position in the global batch (align/training/step.py), so a process holding rows 8..15 of a batch of 16 draws
 the masks that one process draws for its second chunk of 8. The single-process references therefore
 cut the batch into the chunks the two processes hold (chunk_size = 8 for a two-process whole-slice
 run, the same chunk_size for a two-process chunked run) and switch length buckets off, which would
@@ -31,7 +31,8 @@ from rich.console import Console
 from align import artifacts as A
 from align.checkpoint import latest_checkpoint, load_weights
 from align.recipe import recipe_from_toml
-from align.train import build_models, prepare_training_data, train, trainable_parameters
+from align.run import build_models, trainable_parameters
+from align.training import prepare_training_data, train
 
 ROOT = Path(__file__).resolve().parent.parent
 WORLD, BATCH, STEPS = 2, 16, 2

@@ -25,7 +25,7 @@ from accelerate import Accelerator
 
 from align.loss import SigmoidContrastiveLoss, SoftmaxContrastiveLoss, positive_ids
 from align.recipe import TextConfig
-from align.step import chunk_seed, chunk_tokens, contrastive_step, plan_chunks, seeded_rng
+from align.training.step import chunk_seed, chunk_tokens, contrastive_step, plan_chunks, seeded_rng
 from align.text import build_text_tower
 
 DIM = 32

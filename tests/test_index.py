@@ -23,7 +23,7 @@ from align.data.shards import load_table
 from align.errors import FingerprintMismatch
 from align.index import build_index, faiss_flat_index, load_index, top_k_faiss, top_k_numpy
 from align.recipe import load_recipe
-from align.train import train
+from align.training import train
 
 DEMO_RECIPE = Path(__file__).resolve().parent.parent / "recipes" / "demo-cpu.toml"
 # a quick trial of exactly this set-up (4 tiles per pair, 96 px, 60 steps of 64) ranked the right

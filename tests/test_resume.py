@@ -10,7 +10,7 @@ from align import artifacts as A
 from align.checkpoint import latest_checkpoint, list_checkpoints, load_weights
 from align.errors import AlignError
 from align.recipe import recipe_from_toml
-from align.train import train
+from align.training import train
 
 # MiniLM keeps its dropout (p=0.1) on in training, so an exact match also proves the RNG state
 # round-trips through the checkpoint.

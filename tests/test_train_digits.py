@@ -18,7 +18,7 @@ from align import artifacts as A
 from align.data.shards import iter_images
 from align.evaluate import evaluate_run
 from align.recipe import recipe_from_toml
-from align.train import prepare_training_data, train
+from align.training import prepare_training_data, train
 from align.vision import load_image_tower, weights_sha256
 
 pytestmark = pytest.mark.slow

@@ -8,7 +8,7 @@ towers, batch size and step count, it times
 
 (a) the textbook loop: every step decodes its images, preprocesses them and runs the frozen image
     tower (fp32, default memory format), then the text step;
-(b) align's training step (``align.train.train``) on the frozen-feature cache;
+(b) align's training step (``align.training.train``) on the frozen-feature cache;
 
 and measures the machine's matrix-multiply peak (fp32 and bf16), the text step's achieved FLOP/s
 (``torch.utils.flop_counter.FlopCounterMode``) as a share of the peak for its dtype, the cache build
@@ -47,7 +47,7 @@ from align.features import image_features  # noqa: E402
 from align.loss import positive_ids  # noqa: E402
 from align.recipe import VisionConfig, recipe_from_dict  # noqa: E402
 from align.text import build_text_tower  # noqa: E402
-from align.train import TrainingData, prepare_training_data, train  # noqa: E402
+from align.training import TrainingData, prepare_training_data, train  # noqa: E402
 from align.vision import load_image_tower  # noqa: E402
 
 FULL = dict(per_pair=4, tile_px=160, sizes=(224, 160), batch=64, steps=12, warmup=2, scaling=(1000, 4000, 16000),

@@ -79,7 +79,7 @@ def run_child(batch: int, chunk: int, block: int, steps: int, threads: int, buck
 
     from align.loss import build_loss, positive_ids
     from align.recipe import LossConfig, TextConfig
-    from align.step import contrastive_step, step_seed
+    from align.training import contrastive_step, step_seed
     from align.text import build_text_tower
 
     hf_logging.disable_progress_bar()

@@ -35,31 +35,37 @@ are put back in the original order before the loss sees them.
 from __future__ import annotations
 
 import ctypes
-import hashlib
 import os
 import sys
 from contextlib import contextmanager, nullcontext
+from typing import Callable
 
 import torch
 
-from .loss import gather_global
-from .text import TextTower
+from ..loss import gather_global
+from ..seeding import stable_hash
+from ..text import TextTower
 
 
 def step_seed(seed: int, step: int) -> int:
     """The dropout seed of one optimizer step: a function of (train.seed, step) only, so a resumed
     run (or any process) draws the same masks the uninterrupted run would have drawn."""
-    return _mix(f"step:{seed}:{step}")
+    return stable_hash(f"step:{seed}:{step}")
 
 
 def chunk_seed(seed_of_step: int, offset: int) -> int:
     """The seed of the chunk that starts at ``offset`` in the global batch."""
-    return _mix(f"chunk:{seed_of_step}:{offset}")
+    return stable_hash(f"chunk:{seed_of_step}:{offset}")
 
 
-def _mix(text: str) -> int:
-    # A 63-bit hash that is the same in every process (unlike Python's salted hash()).
-    return int.from_bytes(hashlib.blake2b(text.encode(), digest_size=8).digest(), "little") >> 1
+def chunk_seeds(seed_of_step: int, chunks: list[torch.Tensor], first_row: int) -> list[int]:
+    """Each chunk's seed, from its position in the global batch rather than its rank, so the same
+    chunks draw the same dropout masks however the batch is spread over processes."""
+    seeds, position = [], first_row
+    for rows in chunks:
+        seeds.append(chunk_seed(seed_of_step, position))
+        position += len(rows)
+    return seeds
 
 
 @contextmanager
@@ -116,11 +122,6 @@ def chunk_tokens(tokens: dict[str, torch.Tensor], rows: torch.Tensor, device: to
     return {k: v[rows][:, used].to(device) for k, v in tokens.items()}
 
 
-def _encode(model, tokens, rows, device, seed, autocast) -> torch.Tensor:
-    with seeded_rng(device, seed), autocast:
-        return model(**chunk_tokens(tokens, rows, device)).float()  # (c, D)
-
-
 def contrastive_step(model: torch.nn.Module, tower: TextTower, loss_fn: torch.nn.Module, captions: list[str],
                      image_features: torch.Tensor, caption_ids: torch.Tensor, label_ids: torch.Tensor | None,
                      accelerator, autocast, *, chunk_size: int = 0, length_buckets: bool = True,
@@ -132,64 +133,97 @@ def contrastive_step(model: torch.nn.Module, tower: TextTower, loss_fn: torch.nn
     ``rank * b``. ``seed`` fixes the step's dropout (see ``step_seed``); None draws one from the
     current torch RNG. Gradients are accumulated into the parameters' ``.grad``.
     """
-    device = accelerator.device
-    if device.type == "cpu":
+    if accelerator.device.type == "cpu":
         bound_host_allocator()
-    world, rank = accelerator.num_processes, accelerator.process_index
     if seed is None:
         seed = int(torch.randint(0, 2 ** 62, (1,)))
     tokens = tower.tokenize(captions)  # (b, T), padded to the slice's longest caption
-    local = len(captions)
-    first_row = rank * local  # where this slice starts in the global batch
     chunks = plan_chunks(tokens["attention_mask"], chunk_size, length_buckets)
-    # A chunk's seed follows its position in the global batch, not its rank, so the same chunks
-    # draw the same dropout masks however the batch is spread over processes.
-    starts, position = [], first_row
-    for rows in chunks:
-        starts.append(position)
-        position += len(rows)
-    seeds = [chunk_seed(seed, start) for start in starts]
+    first_row = accelerator.process_index * len(captions)  # where this slice starts in the global batch
+    seeds = chunk_seeds(seed, chunks, first_row)
 
+    def global_loss(text: torch.Tensor) -> torch.Tensor:  # (B, D) -> scalar, over the whole batch
+        return loss_fn(text, image_features, caption_ids, label_ids)
+
+    encode = _Encoder(model, tokens, accelerator.device, autocast)
     if len(chunks) == 1:
-        # Whole slice: the graph spans the encoder and the loss.
-        text = _encode(model, tokens, chunks[0], device, seeds[0], autocast)  # (b, D), slice order
-        text = gather_global(text)  # (B, D); autograd flows back to each rank's own slice
-        loss = loss_fn(text, image_features, caption_ids, label_ids)
-        accelerator.backward(loss)
-        return loss.detach()
+        return _whole_slice_step(encode, chunks[0], seeds[0], global_loss, accelerator)
+    return _cached_gradient_step(encode, chunks, seeds, global_loss, accelerator, model, first_row)
 
-    # Pass 1: embeddings of every chunk, no graph (activations freed chunk by chunk).
+
+class _Encoder:
+    """Encodes rows of the slice's tokens under a chunk's seed (the same masks on every call)."""
+
+    def __init__(self, model, tokens: dict[str, torch.Tensor], device: torch.device, autocast):
+        self.model, self.tokens, self.device, self.autocast = model, tokens, device, autocast
+        self.rows = tokens["attention_mask"].shape[0]
+
+    def __call__(self, rows: torch.Tensor, seed: int) -> torch.Tensor:
+        with seeded_rng(self.device, seed), self.autocast:
+            return self.model(**chunk_tokens(self.tokens, rows, self.device)).float()  # (c, D)
+
+
+def _whole_slice_step(encode: _Encoder, rows: torch.Tensor, seed: int, global_loss: Callable,
+                      accelerator) -> torch.Tensor:
+    """One forward with a graph spanning the encoder and the loss, one backward."""
+    text = encode(rows, seed)  # (b, D), slice order
+    text = gather_global(text)  # (B, D); autograd flows back to each rank's own slice
+    loss = global_loss(text)
+    accelerator.backward(loss)
+    return loss.detach()
+
+
+def _cached_gradient_step(encode: _Encoder, chunks: list[torch.Tensor], seeds: list[int], global_loss: Callable,
+                          accelerator, model, first_row: int) -> torch.Tensor:
+    """Gradient caching: embed without a graph, take dL/d(embeddings) once, replay each chunk."""
+    embedded = _embed_without_graph(encode, chunks, seeds)  # (b, D)
+    loss, cached = _embedding_gradient(embedded, global_loss, accelerator, first_row)
+    _replay_with_graph(encode, chunks, seeds, cached, accelerator, model)
+    return loss
+
+
+def _embed_without_graph(encode: _Encoder, chunks: list[torch.Tensor], seeds: list[int]) -> torch.Tensor:
+    """Pass 1: embeddings of every chunk, no graph (activations freed chunk by chunk). (b, D)"""
     embedded = None
     with torch.no_grad():
-        for rows, chunk_seed_ in zip(chunks, seeds):
-            out = _encode(model, tokens, rows, device, chunk_seed_, autocast)  # (c, D)
+        for rows, seed in zip(chunks, seeds):
+            out = encode(rows, seed)  # (c, D)
             if embedded is None:
-                embedded = out.new_empty(local, out.shape[1])  # (b, D) in the slice's own order
-            embedded[rows.to(device)] = out
+                embedded = out.new_empty(encode.rows, out.shape[1])  # (b, D) in the slice's own order
+            embedded[rows.to(encode.device)] = out
+    return embedded
 
-    # Pass 2: the loss over the global batch, and its gradient w.r.t. the embeddings only. Every
-    # rank computes the same loss on the same gathered rows; the loss's own parameters (scale,
-    # bias) get their full gradient here.
+
+def _embedding_gradient(embedded: torch.Tensor, global_loss: Callable, accelerator,
+                        first_row: int) -> tuple[torch.Tensor, torch.Tensor]:
+    """Pass 2: the loss over the global batch, and its gradient w.r.t. this rank's embeddings only.
+
+    Every rank computes the same loss on the same gathered rows; the loss's own parameters (scale,
+    bias) get their full gradient here. Returns (detached loss, dL/d(own rows) (b, D)).
+    """
+    world, local = accelerator.num_processes, embedded.shape[0]
     with torch.no_grad():
         gathered = gather_global(embedded)  # (B, D)
     gathered = gathered.detach().requires_grad_(True)
-    loss = loss_fn(gathered, image_features, caption_ids, label_ids)
+    loss = global_loss(gathered)
     accelerator.backward(loss)
-    cached = gathered.grad[first_row:first_row + local]  # (b, D) dL/d(own rows)
+    cached = gathered.grad[first_row:first_row + local]  # (b, D)
     if world > 1:
         # The parameter gradients are averaged over ranks afterwards (DDP); the autograd all_gather
         # of the whole-slice path hands each rank world * dL/dx for the same reason.
         cached = cached * world
-    del gathered
+    return loss.detach(), cached
 
-    # Pass 3: re-encode each chunk with a graph (same dropout masks) and push its cached gradient
-    # through. Gradient sync across ranks waits for the last chunk.
-    last = len(chunks) - 1
-    for j, (rows, chunk_seed_) in enumerate(zip(chunks, seeds)):
+
+def _replay_with_graph(encode: _Encoder, chunks: list[torch.Tensor], seeds: list[int], cached: torch.Tensor,
+                       accelerator, model) -> None:
+    """Pass 3: re-encode each chunk with a graph (same dropout masks) and push its cached gradient
+    through. Gradient sync across ranks waits for the last chunk."""
+    last, world = len(chunks) - 1, accelerator.num_processes
+    for j, (rows, seed) in enumerate(zip(chunks, seeds)):
         sync = nullcontext() if j == last or world == 1 else accelerator.no_sync(model)
         with sync:
-            out = _encode(model, tokens, rows, device, chunk_seed_, autocast)  # (c, D)
+            out = encode(rows, seed)  # (c, D)
             # Plain autograd (not accelerator.backward): a gradient scaler, if any, already
             # scaled the cached gradient through the loss's backward above.
-            torch.autograd.backward(out, cached[rows.to(device)])
-    return loss.detach()
+            torch.autograd.backward(out, cached[rows.to(encode.device)])
