@@ -21,7 +21,7 @@ from align import artifacts as A
 from align.cli import main as cli_main
 from align.errors import AlignError, FingerprintMismatch
 from align.recipe import recipe_from_toml
-from align.train import train
+from align.training.loop import train
 
 TINY_LORA = """
 name = "tiny-lora"
@@ -48,10 +48,11 @@ image_size = 32
 [text]
 kind = "scratch"
 max_length = 16
+[text.scratch]
 width = 32
-depth = 1
-heads = 2
-vocab_size = 200
+layers = 1
+attention_heads = 2
+vocabulary_size = 200
 [train]
 steps = 3
 batch_size = 16
@@ -112,10 +113,9 @@ def _onnxruntime(path, batch):
 
 
 def _align_reference(run_dir, texts):
-    from align.evaluate import load_run_recipe
-    from align.train import load_trained
+    from align.run import RunDir
 
-    tower, _, _ = load_trained(run_dir, load_run_recipe(run_dir), 1280)
+    tower = RunDir(run_dir).load_trained(1280).tower
     return tower.embed(texts).numpy()
 
 

@@ -18,7 +18,7 @@ from PIL import Image
 from align import artifacts as A
 from align.checkpoint import latest_checkpoint, load_weights
 from align.errors import AlignError
-from align.recipe import TextConfig, recipe_from_toml
+from align.recipe import ScratchConfig, TextConfig, recipe_from_toml
 from align.text import build_text_tower, default_text_model_dir
 
 # Trade words the MiniLM (BERT uncased WordPiece) tokenizer splits into 3+ pieces, e.g.
@@ -129,8 +129,8 @@ def test_new_rows_start_as_the_mean_of_their_pieces(base, tmp_path):
 
 
 def test_scratch_tower_keeps_its_added_terms(tmp_path):
-    cfg = TextConfig(kind="scratch", new_tokens=["fish scale"], width=32, depth=1, heads=2, vocab_size=300,
-                     max_length=16)
+    cfg = TextConfig(kind="scratch", new_tokens=["fish scale"], max_length=16,
+                     scratch=ScratchConfig(width=32, layers=1, attention_heads=2, vocabulary_size=300))
     trained = build_text_tower(cfg, 8, train_captions=CAPTIONS + ["fish scale mosaic"],
                                tokenizer_dir=tmp_path / A.TOKENIZER_DIR)
     reloaded = build_text_tower(cfg, 8, tokenizer_dir=tmp_path / A.TOKENIZER_DIR)
@@ -165,7 +165,7 @@ log_every = 4
 
 @pytest.fixture(scope="module")
 def extended_run(tile_word_shards, tmp_path_factory):
-    from align.train import train
+    from align.training.loop import train
 
     recipe = recipe_from_toml(EXTEND_RECIPE, [f"data.shards={json.dumps(str(tile_word_shards))}"])
     run_dir = tmp_path_factory.mktemp("vocab-run") / "run"
@@ -174,7 +174,7 @@ def extended_run(tile_word_shards, tmp_path_factory):
 
 
 def test_training_changes_only_the_new_rows(extended_run, base):
-    from align.train import load_trained
+    from align.run import RunDir
 
     tokenizer, model = base
     recipe, run_dir = extended_run
@@ -188,7 +188,7 @@ def test_training_changes_only_the_new_rows(extended_run, base):
     assert [tuple(v.shape) for v in token_tensors.values()] == [(n, model.config.hidden_size)]
     assert not any("word_embeddings.weight" in k for k in weights)
 
-    tower, _, _ = load_trained(run_dir, recipe, weights["text.projection.weight"].shape[0])
+    tower = RunDir(run_dir).load_trained(weights["text.projection.weight"].shape[0], recipe=recipe).tower
     with torch.no_grad():
         rows = tower.encoder.get_input_embeddings()(torch.arange(vocab + n)[None])[0]  # (V + n, H)
     reference = model.get_input_embeddings().weight.detach()
@@ -218,13 +218,13 @@ def test_export_reloads_with_plain_transformers(extended_run, extended_export, b
     from safetensors.torch import load_file
     from transformers import AutoModel, AutoTokenizer
 
-    from align.train import load_trained
+    from align.run import RunDir
 
     tokenizer, model = base
     recipe, run_dir = extended_run
     out = extended_export
     weights = load_weights(latest_checkpoint(run_dir))
-    trained, _, _ = load_trained(run_dir, recipe, weights["text.projection.weight"].shape[0])
+    trained = RunDir(run_dir).load_trained(weights["text.projection.weight"].shape[0], recipe=recipe).tower
 
     folder = out / A.EXPORT_TEXT_ENCODER
     plain_tok = AutoTokenizer.from_pretrained(str(folder))
@@ -267,7 +267,7 @@ def test_adapter_export_stores_only_the_new_rows(extended_export, base, extended
     from safetensors.torch import load_file
 
     from align.api import load_adapter_encoder
-    from align.train import load_trained
+    from align.run import RunDir
 
     _, model = base
     adapter = load_file(str(extended_export / A.EXPORT_ADAPTER / "adapter_model.safetensors"))
@@ -276,7 +276,7 @@ def test_adapter_export_stores_only_the_new_rows(extended_export, base, extended
 
     recipe, run_dir = extended_run
     weights = load_weights(latest_checkpoint(run_dir))
-    trained, _, _ = load_trained(run_dir, recipe, weights["text.projection.weight"].shape[0])
+    trained = RunDir(run_dir).load_trained(weights["text.projection.weight"].shape[0], recipe=recipe).tower
     rebuilt, tokenizer, _ = load_adapter_encoder(extended_export / A.EXPORT_ADAPTER)
     captions = ["a zellige tile with a handwritten two", "celadon glaze, the digit three", "a tile"]
     batch = tokenizer(captions, padding=True, truncation=True, return_tensors="pt")
