@@ -16,7 +16,7 @@ from . import artifacts as A
 from .data.shards import SplitTable, load_table
 from .features import FeatureSet, image_features
 from .fileio import write_json_atomic
-from .labels import canonical_labels
+from .labels import label_group
 from .metrics import (class_text_embeddings, display_name, format_metrics_table, linear_probe_accuracy,
                       retrieval_metrics, zero_shot_accuracy)
 from .run import RunDir, shards_dir
@@ -100,7 +100,7 @@ def evaluate_run(run_dir: str | Path, shards: str | Path | None = None, tag: str
     labels = [eval_table.labels[i] for i in keep]
     image_emb = eval_feats.embeddings.numpy()  # (N, D)
     text_emb = trained.tower.embed(captions).numpy()  # (N, D)
-    groups = [canonical_labels(lab) for lab in labels]
+    groups = [label_group(lab) for lab in labels]  # None: an unlabelled image matches only its pair
     metrics: dict = retrieval_metrics(text_emb, image_emb, None,
                                       groups if any(g is not None for g in groups) else None,
                                       ks=recipe.eval.recall_ks)
