@@ -4,9 +4,6 @@ PY      ?= python3.11
 VENV    := .venv
 BIN     := $(VENV)/bin
 STAMP   := $(VENV)/.installed
-export HF_HUB_OFFLINE := 1
-export TRANSFORMERS_OFFLINE := 1
-export TOKENIZERS_PARALLELISM := false
 
 .PHONY: install demo test bench clean
 

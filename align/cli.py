@@ -30,7 +30,7 @@ def cmd_pack(args) -> int:
 
 
 def cmd_train(args) -> int:
-    from .train import train
+    from .training import train
     recipe = _recipe(args)
     run_dir = Path(args.run_dir or Path("runs") / recipe.name)
     summary = train(recipe, run_dir, resume=args.resume, console=console)
@@ -278,9 +278,8 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
-    os.environ.setdefault("HF_HUB_OFFLINE", "1")  # models load from local paths only
-    os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
-    os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
+    from .offline import use_offline_defaults
+    use_offline_defaults()  # models load from local paths only
     args = build_parser().parse_args(argv)
     try:
         return args.func(args)

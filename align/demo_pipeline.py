@@ -19,7 +19,7 @@ from .data.demo import HELDOUT_PAIRS, write_catalogue
 from .data.pack import pack_source
 from .evaluate import evaluate_run
 from .recipe import load_recipe
-from .train import train
+from .training import train
 from .vocab import shards_vocab_report
 
 DEFAULT_RECIPE = Path(__file__).resolve().parent.parent / "recipes" / "demo-cpu.toml"
@@ -53,7 +53,7 @@ def run_demo(out: Path, data_dir: Path | None = None, recipe_path: str | None = 
     recipe = load_recipe(recipe_path or DEFAULT_RECIPE, [f"data.shards={json.dumps(str(shards))}", *(overrides or [])])
     # how the text tokenizer reads the catalogue's trade words (cheap: tokenizers only, no model)
     vocab = shards_vocab_report(shards, text_model=recipe.text.model, cap=recipe.text.new_tokens_cap,
-                                scratch_vocab_size=recipe.text.vocab_size)
+                                scratch_vocab_size=recipe.text.scratch.vocabulary_size)
     if out.exists():  # the demo always trains afresh into its own folder
         shutil.rmtree(out)
     console.rule("training")

@@ -33,7 +33,6 @@ the global batch; every process then computes the same loss over all B rows.
 """
 from __future__ import annotations
 
-import hashlib
 import math
 
 import torch
@@ -43,17 +42,12 @@ from torch import Tensor, nn
 from torch.utils.checkpoint import checkpoint
 
 from .labels import label_group
+from .seeding import stable_hash as _stable_id  # ids agree across processes (hash() is salted)
 
 POSITIVE_MODES = ("pair", "caption", "caption+labels")
 
 
 # --------------------------------------------------------------------------- positives
-
-def _stable_id(text: str) -> int:
-    """A 63-bit id for a string that is the same in every process (Python's hash() is salted per
-    process). Collisions are negligible at 2**-63 per pair; equal strings always get equal ids."""
-    return int.from_bytes(hashlib.blake2b(text.encode("utf-8"), digest_size=8).digest(), "little") >> 1
-
 
 def _canonical_caption(caption: str) -> str:
     # Captions that differ only in spacing are the same text to a reader and to the tokenizer.

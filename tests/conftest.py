@@ -2,11 +2,10 @@
 from __future__ import annotations
 
 import json
-import os
 
-os.environ.setdefault("HF_HUB_OFFLINE", "1")  # models load from local paths only, never a hub
-os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
-os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
+from align.offline import use_offline_defaults
+
+use_offline_defaults()  # before anything imports transformers: models load from local paths only, never a hub
 
 import numpy as np
 import pytest

@@ -15,9 +15,9 @@ import os
 import sys
 from pathlib import Path
 
-os.environ.setdefault("HF_HUB_OFFLINE", "1")
-os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
-os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
+from align.offline import use_offline_defaults  # noqa: E402
+
+use_offline_defaults()
 
 import torch  # noqa: E402
 import torch.distributed as dist  # noqa: E402

@@ -30,6 +30,7 @@ from rich.console import Console
 
 from align import artifacts as A
 from align.checkpoint import latest_checkpoint, load_weights
+from align.offline import offline_env
 from align.recipe import recipe_from_toml
 from align.run import build_models, trainable_parameters
 from align.training import prepare_training_data, train
@@ -83,8 +84,7 @@ def runs(small_digits_shards, tmp_path_factory):
                      for name, kind, loss, chunk, _, cut in CASES]}
     (out / "two").mkdir()
     (out / "spec.json").write_text(json.dumps(spec))
-    env = dict(os.environ, PYTHONPATH=str(ROOT), OMP_NUM_THREADS="1", HF_HUB_OFFLINE="1",
-               TRANSFORMERS_OFFLINE="1", TOKENIZERS_PARALLELISM="false")
+    env = offline_env(dict(os.environ, PYTHONPATH=str(ROOT), OMP_NUM_THREADS="1"))
     started = time.perf_counter()
     proc = subprocess.run([sys.executable, "-m", "torch.distributed.run", "--standalone",
                            f"--nproc_per_node={WORLD}", str(ROOT / "tests" / "distributed_worker.py"),

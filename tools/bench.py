@@ -30,10 +30,10 @@ import sys
 import time
 from pathlib import Path
 
-os.environ.setdefault("HF_HUB_OFFLINE", "1")  # models load from local paths only
-os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
-os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+from align.offline import use_offline_defaults  # noqa: E402
+
+use_offline_defaults()  # models load from local paths only
 
 import torch  # noqa: E402
 import torch.nn.functional as F  # noqa: E402

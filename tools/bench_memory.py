@@ -69,10 +69,9 @@ def rss_bytes() -> int:
 
 def run_child(batch: int, chunk: int, block: int, steps: int, threads: int, buckets: int) -> dict:
     """Build the tower and the loss, take ``steps`` optimizer steps; report memory and time."""
-    os.environ.setdefault("HF_HUB_OFFLINE", "1")
-    os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
-    os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
     sys.path.insert(0, str(ROOT))
+    from align.offline import use_offline_defaults
+    use_offline_defaults()
     import torch
     from accelerate import Accelerator
     from transformers.utils import logging as hf_logging

@@ -5,7 +5,7 @@
 A job is train -> evaluate -> [export -> [index]], in the job's run folder HOME/runs/job-N. Every
 attempt resumes from the run's newest checkpoint, so a job cut off anywhere (a crash, ``kill -9``
 of the service, a reboot) continues where its last checkpoint left it, and a resumed run takes
-exactly the steps the uninterrupted one would have (``align.train`` restores weights, optimizer,
+exactly the steps the uninterrupted one would have (``align.training`` restores weights, optimizer,
 schedule and RNG; the sampler depends only on the step).
 
 Liveness: a worker holds an exclusive ``flock`` on HOME/locks/worker-<id>.lock for its whole life.
@@ -31,6 +31,7 @@ from pathlib import Path
 from rich.console import Console
 
 from .. import artifacts as A
+from ..offline import use_offline_defaults
 from ..run import RunDir
 from ..errors import AlignError
 from .home import Home, Settings, load_settings
@@ -104,7 +105,7 @@ def run_job(job: dict, store: JobStore, settings: Settings, stop: threading.Even
 def _attempt(job: dict, store: JobStore, settings: Settings, stop: threading.Event, console: Console) -> str:
     from ..evaluate import evaluate_run
     from ..recipe import recipe_from_toml
-    from ..train import train
+    from ..training import train
 
     job_id, spec, run_dir = job["id"], job["spec"], Path(job["run_dir"])
     home = Home(settings.home)
@@ -177,9 +178,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--slot", type=int, default=0)
     parser.add_argument("--parent", type=int, required=True, help="pid of the service; the worker dies with it")
     args = parser.parse_args(argv)
-    os.environ.setdefault("HF_HUB_OFFLINE", "1")
-    os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
-    os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
+    use_offline_defaults()
     die_with_parent(args.parent)
 
     settings = load_settings(Path(args.home))
