@@ -66,7 +66,7 @@ def cmd_demo(args) -> int:
 def cmd_vocab(args) -> int:
     import json
 
-    from .vocab import report_tables, shards_vocab_report
+    from .text.vocab import report_tables, shards_vocab_report
     report = shards_vocab_report(args.shards, split=args.split, text_model=args.text_model or "", cap=args.cap,
                                  scratch_vocab_size=args.scratch_vocab_size, top=args.top)
     if args.json:

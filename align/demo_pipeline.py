@@ -20,7 +20,7 @@ from .data.pack import pack_source
 from .evaluate import evaluate_run
 from .recipe import load_recipe
 from .training import train
-from .vocab import shards_vocab_report
+from .text.vocab import shards_vocab_report
 
 DEFAULT_RECIPE = Path(__file__).resolve().parent.parent / "recipes" / "demo-cpu.toml"
 CATALOGUE_SEED = 0

@@ -69,7 +69,7 @@ CAPTIONS = ["Cobalt zellige wall tile, quatrefoil border", "zellige in ochre, cr
 
 
 def test_report_counts_match_an_independent_count(base):
-    from align.vocab import tokenizer_stats, vocab_report
+    from align.text.vocab import tokenizer_stats, vocab_report
 
     tokenizer, _ = base
     stats = tokenizer_stats(tokenizer, CAPTIONS, "base")

@@ -13,7 +13,7 @@ kind is one more class here, plus its name among ``TextConfig.kind``'s choices (
 lists agree).
 
 ``text.new_tokens`` (a list of terms, or "auto" to mine the captions) adds the trade's words to the
-tokenizer as whole tokens (``align.vocab``). The extended tokenizer and the term list are saved in
+tokenizer as whole tokens (``align.text.vocab``). The extended tokenizer and the term list are saved in
 the run's tokenizer folder, so evaluate, resume and export rebuild it.
 """
 from __future__ import annotations
@@ -26,9 +26,7 @@ from typing import Sequence
 import torch
 from torch import nn
 
-# a module import, not a name import: align.vocab imports align.text.tokenizers, which runs this
-# package's __init__ (and so this module) first when vocab is the first of the two imported
-from .. import vocab
+from . import vocab
 from ..errors import AlignError
 from ..recipe import TextConfig
 from .tokenizers import (DEFAULT_TEXT_PACKAGE, extend_tokenizer, is_default_text_model, load_pretrained_tokenizer,

@@ -6,7 +6,7 @@
 - the WordPiece tokenizer a scratch tower learns from its training captions;
 - a run's tokenizer folder: the tokenizer plus the record of the terms added to it.
 
-Nothing here builds a model: ``align.vocab`` (the domain vocabulary) sits above this module and
+Nothing here builds a model: ``align.text.vocab`` (the domain vocabulary) sits above this module and
 the towers above both.
 """
 from __future__ import annotations

@@ -50,8 +50,11 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, console:
     data = data or shared_training_data(recipe, console, accelerator)
     batches = StepBatches(data, cfg.batch_size, cfg.seed, accelerator.num_processes, accelerator.process_index,
                           accelerator.device)
-    # text tower, loss (its temperature learns too), AdamW, warm-up + cosine schedule, seeded by the recipe
-    learner = _Learner.build(recipe, run.path, data)
+    # text tower, loss (its temperature learns too), AdamW, warm-up + cosine schedule, seeded by the recipe;
+    # rank 0 first: a tokenizer it learns (scratch) or extends (added terms) is saved in the run folder,
+    # and the other ranks load that one (the WordPiece trainer is not repeatable across processes)
+    with accelerator.main_process_first():
+        learner = _Learner.build(recipe, run.path, data)
     # resume: weights, optimizer, schedule and RNG come back; the batches need only the step
     start_step, elapsed_before = _restore(learner, run, previous, changes, cfg, console, accelerator.is_main_process)
     learner.prepare(accelerator)

@@ -25,9 +25,9 @@ from typing import Sequence
 import numpy as np
 import torch
 
-from .errors import AlignError
-from .recipe import TextConfig
-from .text.tokenizers import (copy_tokenizer, extend_tokenizer, load_pretrained_tokenizer, normalize, piece_ids,
+from ..errors import AlignError
+from ..recipe import TextConfig
+from .tokenizers import (copy_tokenizer, extend_tokenizer, load_pretrained_tokenizer, normalize, piece_ids,
                               pieces_of, read_term_record, record_matches, save_tokenizer_dir, term_record,
                               text_model_dir, train_scratch_tokenizer, words_of)
 
@@ -273,7 +273,7 @@ def load_base_tokenizer(text_model: str = ""):
 def shards_vocab_report(shards_dir: str | Path, split: str = "train", text_model: str = "", cap: int = 64,
                         scratch_vocab_size: int = 2000, top: int = 20) -> dict:
     """``align vocab``: the report over one split of a packed folder."""
-    from .data.shards import load_table
+    from ..data.shards import load_table
 
     captions = load_table(shards_dir, split).captions
     tokenizer, path = load_base_tokenizer(text_model)
