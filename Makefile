@@ -19,6 +19,7 @@ install: $(STAMP)
 demo: $(STAMP)
 	$(BIN)/align demo --out runs/demo
 
+# tests/test_architecture.py runs the import contracts too (pyproject.toml [tool.importlinter])
 test: $(STAMP)
 	$(BIN)/python -m pytest -q
 
