@@ -14,6 +14,7 @@ from rich.console import Console
 
 from . import artifacts as A
 from .data.shards import SplitTable, load_table
+from .errors import DataError
 from .features import FeatureSet, image_features
 from .fileio import write_json_atomic
 from .labels import label_group
@@ -101,13 +102,17 @@ def evaluate_run(run_dir: str | Path, shards: str | Path | None = None, tag: str
     image_emb = eval_feats.embeddings.numpy()  # (N, D)
     text_emb = trained.tower.embed(captions).numpy()  # (N, D)
     groups = [label_group(lab) for lab in labels]  # None: an unlabelled image matches only its pair
-    metrics: dict = retrieval_metrics(text_emb, image_emb, None,
-                                      groups if any(g is not None for g in groups) else None,
-                                      ks=recipe.eval.recall_ks)
-
     train_labels = [train_table.labels[i] for i in _rows_with_features(train_table, train_feats)]
-    metrics |= _zero_shot_and_probe(recipe, lambda texts: trained.tower.embed(texts).numpy(), labels, image_emb,
-                                    train_labels, train_feats.embeddings.numpy())
+    try:  # the metrics are pure functions: their plain errors become a message with a hint here
+        metrics: dict = retrieval_metrics(text_emb, image_emb, None,
+                                          groups if any(g is not None for g in groups) else None,
+                                          ks=recipe.eval.recall_ks)
+        metrics |= _zero_shot_and_probe(recipe, lambda texts: trained.tower.embed(texts).numpy(), labels,
+                                        image_emb, train_labels, train_feats.embeddings.numpy())
+    except ValueError as exc:
+        raise DataError(f"cannot evaluate {run.path} ({trained.checkpoint.name}) on {eval_dir} [{split}]: {exc}",
+                        "check that the split has decodable images with captions, and that the run's weights "
+                        "are finite (a run that diverged has nothing to measure)") from None
     metrics["eval_pairs"] = len(captions)
     metrics["temperature"] = float(trained.loss_fn.temperature())
 
