@@ -9,12 +9,17 @@ from __future__ import annotations
 
 import dataclasses
 import difflib
+import math
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, get_args, get_origin, get_type_hints
 
 from .errors import RecipeError
+
+
+# Larger inputs buy nothing a tower was trained for, and cost memory with the square of the side.
+MAX_IMAGE_SIZE = 1024
 
 
 def _f(default, doc: str, choices: tuple | None = None):
@@ -162,6 +167,8 @@ def _coerce(where: str, value: Any, kind: type, default: Any) -> Any:
             return value
     elif kind is float:
         if isinstance(value, (int, float)) and not isinstance(value, bool):
+            if not math.isfinite(value):  # TOML spells nan and inf; no hyper-parameter means them
+                raise RecipeError(f"{where} must be a finite number, got {value!r}", f"for example {where}={default!r}")
             return float(value)
     elif kind is str:
         if isinstance(value, str):
@@ -239,6 +246,10 @@ def _validate(recipe: Recipe) -> None:
     for where, value in positive.items():
         if value < 1:
             raise RecipeError(f"{where} must be at least 1, got {value}", f"for example {where}=1")
+    if tr.batch_size < 2:
+        raise RecipeError(f"train.batch_size must be at least 2, got {tr.batch_size}",
+                          "a contrastive loss scores each pair against the others in its batch; for example 64")
+    _validate_counts(recipe)
     if tr.lr <= 0:
         raise RecipeError(f"train.lr must be positive, got {tr.lr}", "for example train.lr=5e-4")
     if tr.chunk_size < 0 or tr.chunk_size > tr.batch_size:
@@ -250,9 +261,28 @@ def _validate(recipe: Recipe) -> None:
     if t.kind == "scratch" and not 0 <= sc.dropout < 1:
         raise RecipeError(f"text.scratch.dropout must be in [0, 1), got {sc.dropout}", "for example 0.1")
     _validate_loss(lo)
-    if v.image_size and v.image_size < 32:
-        raise RecipeError(f"vision.image_size must be 0 (native) or at least 32, got {v.image_size}")
+    if v.image_size and not 32 <= v.image_size <= MAX_IMAGE_SIZE:
+        raise RecipeError(f"vision.image_size must be 0 (native) or between 32 and {MAX_IMAGE_SIZE}, got {v.image_size}",
+                          "the tower's native size (0) is what its weights were trained at; 160 or 224 are usual")
     _validate_eval(ev)
+
+
+def _validate_counts(recipe: Recipe) -> None:
+    """Counts and rates with a lower bound (the types are already checked)."""
+    t, tr, v, ev = recipe.text, recipe.train, recipe.vision, recipe.eval
+    at_least = {"train.log_every": (tr.log_every, 1, "10"), "train.keep_checkpoints": (tr.keep_checkpoints, 1, "2"),
+                "eval.probe_max_iter": (ev.probe_max_iter, 1, "1000"), "train.threads": (tr.threads, 0, "0 (one per core)"),
+                "train.warmup_steps": (tr.warmup_steps, 0, "20"), "train.checkpoint_every": (tr.checkpoint_every, 0, "100"),
+                "vision.workers": (v.workers, 0, "0"), "text.new_tokens_cap": (t.new_tokens_cap, 0, "64"),
+                "train.grad_clip": (tr.grad_clip, 0, "1.0 (0 = off)"), "train.weight_decay": (tr.weight_decay, 0, "0.01")}
+    for where, (value, low, example) in at_least.items():
+        if value < low:
+            raise RecipeError(f"{where} must be at least {low}, got {value}", f"for example {where}={example}")
+    if not t.lora_alpha > 0 or not 0 <= t.lora_dropout < 1:
+        raise RecipeError(f"text.lora_alpha must be positive and text.lora_dropout in [0, 1), got "
+                          f"{t.lora_alpha} and {t.lora_dropout}", "for example lora_alpha=16.0, lora_dropout=0.0")
+    if not ev.probe_c > 0:
+        raise RecipeError(f"eval.probe_c must be positive, got {ev.probe_c}", "for example eval.probe_c=1.0")
 
 
 def _validate_loss(lo: LossConfig) -> None:

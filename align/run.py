@@ -23,7 +23,7 @@ import torch
 from . import artifacts as A
 from .checkpoint import apply_weights, list_checkpoints, load_weights, read_progress
 from .data.shards import read_manifest
-from .errors import AlignError, FingerprintMismatch
+from .errors import AlignError, DataError, FingerprintMismatch
 from .fileio import write_text_atomic
 from .loss import build_loss
 from .recipe import Recipe, dump_recipe, load_recipe
@@ -165,7 +165,12 @@ class RunDir:
         quiet_transformers()
         ckpt = self.checkpoint(checkpoint)
         tower, loss_fn = build_models(recipe or self.recipe(), self.path, feature_dim, captions=None)
-        apply_weights(trainable_parameters(tower, loss_fn), load_weights(ckpt), ckpt)
+        weights = load_weights(ckpt)
+        broken = sorted(name for name, t in weights.items() if t.is_floating_point() and not torch.isfinite(t).all())
+        if broken:  # such weights embed every caption as NaN: nothing downstream could be trusted
+            raise DataError(f"checkpoint {ckpt} holds non-finite weights ({len(broken)} tensors, e.g. {broken[0]})",
+                            "evaluate or export an earlier checkpoint (--checkpoint), or train the run again")
+        apply_weights(trainable_parameters(tower, loss_fn), weights, ckpt)
         return TrainedText(tower.eval(), loss_fn.eval(), ckpt)
 
     def check_tower(self, checkpoint: Path, fingerprint: dict) -> None:

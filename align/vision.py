@@ -207,3 +207,45 @@ def shared_image_tower(cfg: VisionConfig) -> FrozenImageTower:
         _SHARED.clear()  # one tower at a time: a process that switches towers does not keep the old one
         _SHARED[key] = load_image_tower(cfg)
     return _SHARED[key]
+
+
+def activation_bytes(tower: FrozenImageTower, batch_size: int, probe_side: int = 64) -> int:
+    """Estimated peak memory of one forward pass over ``batch_size`` images at the tower's input size.
+
+    One image at ``probe_side`` pixels runs through the model while hooks record, for every leaf
+    module, its input plus its output (both are alive while it runs); the largest of those sums
+    scales with the pixel count and the batch. Weights come on top. An estimate, on the safe side
+    for a plain feed-forward CNN or ViT; it exists to refuse a size that cannot fit, not to plan to
+    the last megabyte.
+    """
+    worst = [0]
+
+    def hook(module, inputs, output):
+        size = sum(t.numel() for t in inputs if torch.is_tensor(t))
+        size += output.numel() if torch.is_tensor(output) else 0
+        worst[0] = max(worst[0], size)
+
+    leaves = [m for m in tower.model.modules() if not list(m.children())]
+    handles = [m.register_forward_hook(hook) for m in leaves]
+    try:
+        with torch.inference_mode():
+            tower.model(torch.zeros(1, 3, probe_side, probe_side))
+    finally:
+        for handle in handles:
+            handle.remove()
+    side = int(tower.preprocessing["input_size"][-1])
+    per_image = worst[0] * 4 * (side / probe_side) ** 2  # float32
+    weights = sum(p.numel() * p.element_size() for p in tower.model.parameters())
+    return int(per_image * batch_size + weights)
+
+
+def check_fits_in_memory(tower: FrozenImageTower, batch_size: int) -> None:
+    """Refuse, before any image is decoded, a tower pass that would run the machine out of memory."""
+    import psutil
+
+    need, free = activation_bytes(tower, batch_size), psutil.virtual_memory().available
+    if need > 0.8 * free:
+        side = int(tower.preprocessing["input_size"][-1])
+        raise AlignError(f"the image tower at {side} px needs about {need / 2**30:.1f} GiB per batch of {batch_size} "
+                         f"images; this machine has {free / 2**30:.1f} GiB free",
+                         "lower vision.image_size (0 = the tower's native size) or vision.batch_size")

@@ -54,6 +54,9 @@ def max_abs_difference(batches: list[dict], reference: Callable, candidate: Call
         a, b = np.asarray(reference(batch)), np.asarray(candidate(batch))
         if a.shape != b.shape:
             raise AlignError(f"export check: shapes differ ({a.shape} vs {b.shape})", "report this as a bug")
+        if not (np.isfinite(a).all() and np.isfinite(b).all()):  # max() would skip NaN and report 0.0
+            raise AlignError("export check: the embeddings are not finite (NaN or infinity)",
+                             "the run's weights diverged; export an earlier checkpoint or train again")
         worst = max(worst, float(np.abs(a - b).max()))
     return worst
 

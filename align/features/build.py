@@ -30,7 +30,7 @@ from ..data.shards import load_table, read_manifest
 from ..errors import AlignError
 from ..fileio import write_bytes_atomic, write_json_atomic
 from ..recipe import VisionConfig
-from ..vision import FrozenImageTower
+from ..vision import FrozenImageTower, check_fits_in_memory
 from .cache import BuildReport, FeatureSet, entry_problem, load_feature_cache
 from .decode import DecodedSamples, decoded_stream, training_transform
 from .fingerprint import cache_root, closest_entry, feature_fingerprint, fingerprint_digest
@@ -227,6 +227,7 @@ def ensure_feature_cache(tower: FrozenImageTower, shards_dir: str | Path, split:
     if entry_problem(entry, fingerprint) is None:
         console.print(f"reusing cached {split} features {entry}")
         return entry, None
+    check_fits_in_memory(tower, cfg.batch_size)  # before anything is created or decoded
     plain = None
     if views > 1:  # built or reused before our lock is taken: one lock held at a time, never two
         plain = load_feature_cache(ensure_feature_cache(tower, shards_dir, split, cfg, console,

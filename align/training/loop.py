@@ -61,8 +61,11 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, console:
     checkpoint = _checkpointer(run, learner, recipe, data.tower_fingerprint, accelerator)
     # steps: each rank encodes its slice of the global batch; the loss sees all of it
     log = _LogWindow(run.metrics_log, accelerator.is_main_process, cfg.batch_size, elapsed_before)
-    last_record, stopped_early = _run_steps(learner, batches, accelerator, cfg, start_step, log, checkpoint,
-                                            on_step, console)
+    try:
+        last_record, stopped_early = _run_steps(learner, batches, accelerator, cfg, start_step, log, checkpoint,
+                                                on_step, console)
+    except Diverged as exc:  # nothing after the last checkpoint is saved: it stays the run's newest
+        raise exc.for_user(run, recipe) from None
     total_elapsed = log.elapsed()
     # the final checkpoint (a stopped run already wrote its own)
     if not stopped_early:
@@ -73,6 +76,22 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, console:
             "final_loss": last_record.get("loss"), "pairs_per_s": last_record.get("pairs_per_s"),
             "elapsed_s": total_elapsed, "train_pairs": len(data.captions),
             "tower_fingerprint": data.tower_fingerprint}
+
+
+class Diverged(Exception):
+    """The loss or the gradient of a step is not finite."""
+
+    def __init__(self, step: int, what: str):
+        super().__init__(f"step {step}: {what}")
+        self.step, self.what = step, what
+
+    def for_user(self, run: RunDir, recipe: Recipe) -> AlignError:
+        last = run.latest()
+        kept = (f"the last good checkpoint, {last.name}, is kept" if last is not None
+                else "no checkpoint was written before it")
+        return AlignError(f"training diverged at step {self.step} of {run.path}: the {self.what}; {kept}",
+                          f"train again into a new --run-dir with a lower train.lr (now {recipe.train.lr:g}), "
+                          f"a longer train.warmup_steps or train.grad_clip > 0")
 
 
 # ---------------------------------------------------------------------------------------------
@@ -181,8 +200,15 @@ def _optimizer_step(learner: _Learner, batch: StepBatch, accelerator, autocast, 
     loss = contrastive_step(learner.model, learner.tower, learner.loss_fn, batch.captions, batch.image_features,
                             batch.caption_ids, batch.label_ids, accelerator, autocast, chunk_size=cfg.chunk_size,
                             length_buckets=cfg.length_buckets, seed=step_seed(cfg.seed, step))
+    # a non-finite loss or gradient would turn every weight into NaN at the optimizer step: stop before it
+    if not torch.isfinite(loss):
+        raise Diverged(step + 1, f"loss is {float(loss)}")
     if cfg.grad_clip > 0:
-        accelerator.clip_grad_norm_(list(learner.named.values()), cfg.grad_clip)
+        norm = accelerator.clip_grad_norm_(list(learner.named.values()), cfg.grad_clip)
+    else:  # the norm alone (no rescale), so the unclipped path stays bit-identical
+        norm = torch.nn.utils.get_total_norm([p.grad for p in learner.named.values() if p.grad is not None])
+    if not torch.isfinite(norm):
+        raise Diverged(step + 1, f"gradient norm is {float(norm)}")
     learner.optimizer.step()
     learner.scheduler.step()
     learner.optimizer.zero_grad(set_to_none=True)
