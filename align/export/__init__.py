@@ -39,7 +39,7 @@ from ..fileio import check_output_dir, open_permissions, swap_dir_in, write_json
 from ..recipe import Recipe
 from ..run import RunDir
 from ..text import TextKind, TextTower, text_kind
-from ..vision import FrozenImageTower, load_image_tower
+from ..vision import FrozenImageTower, shared_image_tower
 from .card import build_card, image_side_record, render_card
 from .checks import TOLERANCE, check_onnx, check_reloaded, enforce, max_abs_difference, onnx_runner
 from .writers import FORMAT_VERSION, ONNX_OPSET, export_onnx, text_head, write_adapter, write_text_encoder
@@ -100,7 +100,7 @@ def export_run(run_dir: str | Path, out: str | Path, *, checkpoint: str | Path |
 
 def _load_trained(run: RunDir, recipe: Recipe, checkpoint: str | Path | None) -> _Trained:
     """The run as trained, against the tower it was trained with (refused if that changed)."""
-    image_tower = load_image_tower(recipe.vision)
+    image_tower = shared_image_tower(recipe.vision)  # a service job reuses the tower it trained with
     loaded = run.load_trained(image_tower.feature_dim, checkpoint, recipe)
     run.check_tower(loaded.checkpoint, image_tower.fingerprint)
     return _Trained(run, recipe, loaded.tower, text_kind(loaded.tower.kind), loaded.loss_fn, loaded.checkpoint,

@@ -280,14 +280,14 @@ def recipe_feature_sets(recipe) -> list[tuple[str, int]]:
 
 def build_recipe_features(recipe, console: Console | None = None) -> list[FeatureSet]:
     """Build (or reuse) every cache of ``recipe`` so training and evaluation start without the tower."""
-    from ..vision import load_image_tower
+    from ..vision import shared_image_tower
 
     console = console or Console(stderr=True)
     if not recipe.data.shards:
         raise AlignError("the recipe names no data", "pass --set data.shards=DIR (a folder written by `align pack`)")
     shards_dir = Path(recipe.data.shards)
     splits = read_manifest(shards_dir)["splits"]
-    tower = load_image_tower(recipe.vision)
+    tower = shared_image_tower(recipe.vision)
     sets = []
     for split, views in recipe_feature_sets(recipe):
         if not splits.get(split, {}).get("samples"):
