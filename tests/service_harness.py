@@ -14,6 +14,8 @@ import os
 import queue
 import signal
 import socket
+import sqlite3
+import stat
 import subprocess
 import sys
 import threading
@@ -71,9 +73,14 @@ class Service:
         """The token header once the service has made its token (reads need it beyond loopback)."""
         return {"Authorization": f"Bearer {self.token}"} if (self.home / "token").is_file() else {}
 
+    @property
+    def log_path(self) -> Path:
+        """The log (stdout and stderr) of the latest start."""
+        return self.home.parent / f"{self.home.name}-serve-{self.starts}.log"
+
     def start(self, timeout_s: float = 120) -> None:
         self.starts += 1
-        log = open(self.home.parent / f"{self.home.name}-serve-{self.starts}.log", "wb")
+        log = open(self.log_path, "wb")
         cmd = [sys.executable, "-m", "align.cli", "serve", "--home", str(self.home), "--port", str(self.port)]
         for root in self.data_roots:
             cmd += ["--data-root", str(root)]
@@ -93,7 +100,7 @@ class Service:
         wait_for(up, timeout_s, "the service to answer /health with a live worker")
 
     def log_text(self) -> str:
-        return (self.home.parent / f"{self.home.name}-serve-{self.starts}.log").read_text(errors="replace")[-4000:]
+        return self.log_path.read_text(errors="replace")[-4000:]
 
     def workers(self) -> list[psutil.Process]:
         try:
@@ -136,6 +143,23 @@ class Service:
             return wait_for(ended, timeout_s, f"job {job_id} to reach {states}", every_s=0.5)
         except AssertionError:
             raise AssertionError(f"job {job_id}: {self.job(job_id)}\n{self.log_text()}") from None
+
+
+def file_tree(*roots: Path) -> dict:
+    """Every entry under the roots with its kind, size and modification time (to show nothing was written)."""
+    out = {}
+    for root in roots:
+        for path in sorted(Path(root).rglob("*")):
+            st = path.lstat()
+            out[str(path)] = (stat.S_IFMT(st.st_mode), st.st_size, st.st_mtime_ns)
+    return out
+
+
+def store_counts(home: Path) -> tuple:
+    """((jobs, highest id), events) in the service's job store."""
+    with sqlite3.connect(Path(home) / "jobs.db") as db:
+        return (db.execute("SELECT COUNT(*), COALESCE(MAX(id), 0) FROM jobs").fetchone(),
+                db.execute("SELECT COUNT(*) FROM events").fetchone()[0])
 
 
 def chromium() -> str | None:

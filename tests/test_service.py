@@ -24,7 +24,7 @@ import psutil
 import pytest
 import torch
 
-from service_harness import REPO, Service, wait_for
+from service_harness import REPO, Service, file_tree, store_counts, wait_for
 
 TINY_RECIPE = """
 name = "svc-digits"
@@ -282,22 +282,6 @@ def test_search_matches_brute_force(service, reference_job):
         assert len({hit["key"] for hit in item["results"]}) == 5
 
 
-def _tree(*roots):
-    """Every file under the roots with its size and modification time."""
-    out = {}
-    for root in roots:
-        for path in sorted(root.rglob("*")):
-            st = path.lstat()
-            out[str(path)] = (stat.S_IFMT(st.st_mode), st.st_size, st.st_mtime_ns)
-    return out
-
-
-def _store_counts(home):
-    with sqlite3.connect(home / "jobs.db") as db:
-        return (db.execute("SELECT COUNT(*), COALESCE(MAX(id), 0) FROM jobs").fetchone(),
-                db.execute("SELECT COUNT(*) FROM events").fetchone()[0])
-
-
 def test_refusals_write_nothing(service, reference_job, small_digits_shards, tmp_path):
     home = service.home
     assert stat.S_IMODE((home / "token").stat().st_mode) == 0o600
@@ -308,9 +292,9 @@ def test_refusals_write_nothing(service, reference_job, small_digits_shards, tmp
     (home / "recipes" / "escape.toml").symlink_to(tmp_path / "recipe.toml")
     (tmp_path / "recipe.toml").write_text(TINY_RECIPE)
     good = {"recipe_toml": TINY_RECIPE, "data": str(small_digits_shards)}
-    before_tree = _tree(home / "runs", home / "exports", home / "indexes", home / "features", home / "data",
+    before_tree = file_tree(home / "runs", home / "exports", home / "indexes", home / "features", home / "data",
                         home / "recipes", small_digits_shards.parent)
-    before_store = _store_counts(home)
+    before_store = store_counts(home)
 
     with service.client(token=False) as anon, service.client() as http:
         refusals = [
@@ -333,7 +317,8 @@ def test_refusals_write_nothing(service, reference_job, small_digits_shards, tmp
                        headers={"content-type": "application/json"}), 413),
             (http.post("/jobs", json={**good, "overrides": ["train.stepz=3"]}), 422),
             (http.post("/jobs", json={**good, "surprise": 1}), 422),
-            (http.get("/jobs", headers={"Host": "attacker.example"}), 403),
+            (http.get("/jobs", headers={"Host": "attacker.example"}), 421),  # a rebinding page's name
+            (http.get("/jobs", headers={"Host": f"127.0.0.1:{service.port}@attacker.example"}), 400),
         ]
     for index, (response, status) in enumerate(refusals):
         assert response.status_code == status, (index, response.status_code, response.text)
@@ -342,8 +327,8 @@ def test_refusals_write_nothing(service, reference_job, small_digits_shards, tmp
     assert "surprise" in refusals[16][0].json()["error"]
     assert "outside the allowed roots" in refusals[6][0].json()["error"]  # the link, followed, leaves the roots
     assert "outside the allowed roots" in refusals[10][0].json()["error"]
-    assert _store_counts(home) == before_store
-    assert _tree(home / "runs", home / "exports", home / "indexes", home / "features", home / "data",
+    assert store_counts(home) == before_store
+    assert file_tree(home / "runs", home / "exports", home / "indexes", home / "features", home / "data",
                  home / "recipes", small_digits_shards.parent) == before_tree
 
 

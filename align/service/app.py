@@ -14,8 +14,12 @@
     POST /exports/{name}/search     {"texts": [...], "k": 10} -> top-k of the export's gallery index
 
 The token goes in ``Authorization: Bearer <token>`` only, never in an address. Errors are JSON
-``{"error": message, "hint": how to fix}``: 401 no token, 403 a path outside the
-roots, 404 unknown, 409 wrong state, 413 body too large, 422 a bad recipe or body (naming the field).
+``{"error": message, "hint": how to fix}``: 400 a malformed request (a Host header that does not
+parse), 401 no token, 403 a path outside the roots (links followed, down to each file a job reads),
+404 unknown (a job id beyond the store's 64-bit range included), 409 wrong state, 413 body too
+large, 421 a Host that is not loopback (bound to loopback), 422 a bad recipe, override or body
+(naming the field; checked before anything is queued), 500 a defect (JSON too; the traceback goes
+to the service's log).
 """
 from __future__ import annotations
 
@@ -26,7 +30,7 @@ import sys
 from contextlib import asynccontextmanager
 from pathlib import Path
 
-from fastapi import FastAPI, Query
+from fastapi import APIRouter, FastAPI, Query
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import FileResponse, HTMLResponse, JSONResponse
 from pydantic import BaseModel, ConfigDict, Field
@@ -65,6 +69,11 @@ class SearchRequest(BaseModel):
 
 STATUS_OF = ((PathRefused, 403), (NotFound, 404), (Conflict, 409), (FingerprintMismatch, 409),
              (RecipeError, 422), (DataError, 422), (AlignError, 400))
+# for an error raised without a hint of its own: every refusal tells the caller what to do next
+DEFAULT_HINT_OF = ((RecipeError, "overrides are section.key=value, as `align train --set` takes them; the README's "
+                                 "recipe reference lists every key, its type and default"),
+                   (DataError, "send data=DIR, a folder written by `align pack` inside a data root"),
+                   (AlignError, "see the API list in the README (Running the service)"))
 
 
 def _error(status: int, message: str, hint: str | None = None, **extra) -> JSONResponse:
@@ -98,30 +107,37 @@ def read_log(path: Path, after: int = 0) -> list[dict]:
     return records
 
 
-def create_app(settings: Settings, token: str, start_workers: bool = True) -> FastAPI:
-    home = Home(settings.home)
-    store = JobStore(home.db)
-    exports = ExportCache(home)
-    pool = None
+class Workers:
+    """The worker processes, started and stopped with the app (none when the app runs without them)."""
+
+    def __init__(self, settings: Settings, start: bool):
+        self.settings = settings
+        self.start = start
+        self.pool = None
 
     @asynccontextmanager
-    async def lifespan(app):
-        nonlocal pool
-        if start_workers:
+    async def lifespan(self, app):
+        if self.start:
             from .supervisor import WorkerPool
 
-            pool = WorkerPool(settings)
-            pool.start()
+            self.pool = WorkerPool(self.settings)
+            self.pool.start()
         yield
-        if pool is not None:
-            pool.stop()
+        if self.pool is not None:
+            self.pool.stop()
 
-    app = FastAPI(title="align service", version=__version__, lifespan=lifespan, docs_url=None, redoc_url=None)
+    def alive(self) -> int:
+        return self.pool.alive() if self.pool else 0
+
+
+def add_error_handlers(app: FastAPI) -> None:
+    """Every refusal is JSON {"error", "hint"}; an AlignError keeps its message, never a traceback."""
 
     @app.exception_handler(AlignError)
     async def align_error(request, exc: AlignError):
         status = next(code for cls, code in STATUS_OF if isinstance(exc, cls))
-        return _error(status, exc.message, exc.hint)
+        hint = exc.hint or next(text for cls, text in DEFAULT_HINT_OF if isinstance(exc, cls))
+        return _error(status, exc.message, hint)
 
     @app.exception_handler(RequestValidationError)
     async def bad_body(request, exc: RequestValidationError):
@@ -130,13 +146,25 @@ def create_app(settings: Settings, token: str, start_workers: bool = True) -> Fa
                       "see the API list in `align serve --help` or the README", detail=json.loads(json.dumps(
                           exc.errors(), default=str)))
 
-    def job_or_404(job_id: int) -> dict:
-        job = store.get(job_id)
-        if job is None:
-            raise NotFound(f"no job {job_id}", "list the jobs with GET /jobs")
-        return job
+    @app.exception_handler(Exception)
+    async def unexpected(request, exc: Exception):
+        # a defect, not a user mistake: the caller gets JSON; Starlette re-raises, so the traceback
+        # goes to the service's log where it can be reported
+        return _error(500, f"internal error: {type(exc).__name__}",
+                      "not a mistake in the request; the traceback is in the service's log")
 
-    @app.get(STATUS_PAGE_PATH, response_class=HTMLResponse)
+
+def job_or_404(store: JobStore, job_id: int) -> dict:
+    job = store.get(job_id)  # None for an id out of the store's range too
+    if job is None:
+        raise NotFound(f"no job {job_id}", "list the jobs with GET /jobs")
+    return job
+
+
+def page_routes(settings: Settings, store: JobStore, workers: Workers) -> APIRouter:
+    router = APIRouter()
+
+    @router.get(STATUS_PAGE_PATH, response_class=HTMLResponse)
     def status_page():
         # form-action 'none': the token form is handled by the script and never submitted anywhere
         return HTMLResponse(STATUS_PAGE, headers={"Content-Security-Policy": "default-src 'self'; "
@@ -144,47 +172,58 @@ def create_app(settings: Settings, token: str, start_workers: bool = True) -> Fa
                                                   "form-action 'none'",
                                                   "Cache-Control": "no-store", "Referrer-Policy": "no-referrer"})
 
-    @app.get("/health")
+    @router.get("/health")
     def health():
-        return {"ok": True, "version": __version__, "workers": settings.workers,
-                "workers_alive": pool.alive() if pool else 0, "jobs": store.count(),
-                "token_for_reads": settings.token_for_reads}
+        return {"ok": True, "version": __version__, "workers": settings.workers, "workers_alive": workers.alive(),
+                "jobs": store.count(), "token_for_reads": settings.token_for_reads}
 
-    @app.post("/jobs", status_code=201)
+    return router
+
+
+def job_routes(settings: Settings, store: JobStore, home: Home) -> APIRouter:
+    router = APIRouter()
+
+    @router.post("/jobs", status_code=201)
     def submit(request: JobRequest):
-        name, spec, steps = build_spec(request, settings)
+        name, spec, steps = build_spec(request, settings)  # validated and confined before anything is stored
         return public_job(store.submit(name, spec, steps, home.run_dir))
 
-    @app.get("/jobs")
+    @router.get("/jobs")
     def list_jobs(state: str | None = Query(None, pattern="^(queued|running|finished|failed|cancelled)$"),
                   limit: int = Query(200, ge=1, le=1000)):
         return {"jobs": [public_job(j) for j in store.list_jobs(limit, state)]}
 
-    @app.get("/jobs/{job_id}")
+    @router.get("/jobs/{job_id}")
     def show(job_id: int):
-        job = public_job(job_or_404(job_id), detail=True)
+        job = public_job(job_or_404(store, job_id), detail=True)
         job["events"] = store.events(job_id)
         return job
 
-    @app.get("/jobs/{job_id}/metrics")
+    @router.get("/jobs/{job_id}/metrics")
     def metrics(job_id: int, after: int = Query(0, ge=0)):
-        job = job_or_404(job_id)
+        job = job_or_404(store, job_id)
         run_dir = Path(job["run_dir"])
         evaluation = run_dir / A.METRICS
         return {"id": job_id, "state": job["state"], "step": job["step"], "steps": job["steps"],
                 "records": read_log(run_dir / A.METRICS_LOG, after),
                 "evaluation": json.loads(evaluation.read_text(encoding="utf-8")) if evaluation.is_file() else None}
 
-    @app.post("/jobs/{job_id}/cancel")
+    @router.post("/jobs/{job_id}/cancel")
     def cancel(job_id: int):
-        job = job_or_404(job_id)
+        job = job_or_404(store, job_id)
         if job["state"] in FINAL_STATES:
             raise Conflict(f"job {job_id} is already {job['state']}", "only queued or running jobs can be cancelled")
         return public_job(store.request_cancel(job_id))
 
-    @app.get("/jobs/{job_id}/artifacts")
+    return router
+
+
+def artifact_routes(store: JobStore) -> APIRouter:
+    router = APIRouter()
+
+    @router.get("/jobs/{job_id}/artifacts")
     def artifacts(job_id: int):
-        run_dir = Path(job_or_404(job_id)["run_dir"])
+        run_dir = Path(job_or_404(store, job_id)["run_dir"])
         files = []
         if run_dir.is_dir():
             for path in sorted(run_dir.rglob("*")):
@@ -193,21 +232,27 @@ def create_app(settings: Settings, token: str, start_workers: bool = True) -> Fa
                     files.append({"path": rel.as_posix(), "bytes": path.stat().st_size})
         return {"id": job_id, "files": files}
 
-    @app.get("/jobs/{job_id}/artifacts/{path:path}")
+    @router.get("/jobs/{job_id}/artifacts/{path:path}")
     def artifact(job_id: int, path: str):
-        run_dir = Path(job_or_404(job_id)["run_dir"])
+        run_dir = Path(job_or_404(store, job_id)["run_dir"])
         if not run_dir.is_dir():
-            raise NotFound(f"job {job_id} has written nothing yet")
+            raise NotFound(f"job {job_id} has written nothing yet", f"its state is in GET /jobs/{job_id}")
         file = confine(path, [run_dir.resolve()], "artifact path")
         if not file.is_file():
             raise NotFound(f"{path} is not a file of job {job_id}", f"list them with GET /jobs/{job_id}/artifacts")
         return FileResponse(file, filename=file.name)
 
-    @app.get("/exports")
+    return router
+
+
+def export_routes(exports: ExportCache) -> APIRouter:
+    router = APIRouter()
+
+    @router.get("/exports")
     def list_exports():
         return {"exports": exports.names()}
 
-    @app.post("/exports/{name}/embed")
+    @router.post("/exports/{name}/embed")
     def embed(name: str, request: EmbedRequest):
         _check_texts(request.texts)
         vectors, entry = exports.embed(name, request.texts)
@@ -215,12 +260,26 @@ def create_app(settings: Settings, token: str, start_workers: bool = True) -> Fa
         return JSONResponse({"export": name, "dim": int(vectors.shape[1]), "count": int(vectors.shape[0]),
                              "embeddings": vectors.astype(float).tolist()})
 
-    @app.post("/exports/{name}/search")
+    @router.post("/exports/{name}/search")
     def search(name: str, request: SearchRequest):
         _check_texts(request.texts)
         return exports.search(name, request.texts, request.k, request.backend)
 
-    app.add_middleware(Guard, token=token, token_for_reads=settings.token_for_reads, check_host=settings.loopback,
+    return router
+
+
+def create_app(settings: Settings, token: str, start_workers: bool = True) -> FastAPI:
+    """The API: route groups behind the Guard (Host, token, body limit), errors as JSON."""
+    home = Home(settings.home)
+    store = JobStore(home.db)
+    workers = Workers(settings, start_workers)
+    app = FastAPI(title="align service", version=__version__, lifespan=workers.lifespan, docs_url=None,
+                  redoc_url=None)
+    add_error_handlers(app)
+    for router in (page_routes(settings, store, workers), job_routes(settings, store, home), artifact_routes(store),
+                   export_routes(ExportCache(home))):
+        app.include_router(router)
+    app.add_middleware(Guard, token=token, token_for_reads=settings.token_for_reads, loopback_only=settings.loopback,
                        max_body=settings.max_body_bytes, public_pages=(STATUS_PAGE_PATH,))
     app.state.store = store
     return app

@@ -7,8 +7,12 @@
   never in an address (addresses end up in browser history, logs and Referer headers); the one
   exception to "every call" is the status page itself (``public_pages``), static HTML that holds
   no data and asks for the token, then sends it as the header on each of its calls;
-- bound to loopback, the Host header must name loopback (a web page that rebinds its own domain
-  name to 127.0.0.1 cannot read the API through the browser);
+- the Host header is parsed strictly (``parse_host``): a missing, repeated or malformed one is a
+  400 (RFC 9112 section 3.2 asks exactly that of a server); bound to loopback, a well-formed Host
+  that names anything but loopback is a 421 Misdirected Request (RFC 9110 section 15.5.20: this
+  service answers only for its loopback names), so a web page that rebinds its own domain name to
+  127.0.0.1 cannot read the API through the browser. Any port is accepted (an ``ssh -L`` tunnel
+  changes it); the name decides;
 - a body over the limit is refused before any route sees it (it is read into memory by the guard,
   at most ``max_body`` bytes, then replayed to the route).
 
@@ -19,14 +23,19 @@ its workers with a fixed argument list and passes jobs through the store.
 from __future__ import annotations
 
 import hmac
+import ipaddress
 import json
 import re
+import string
 from pathlib import Path
+from urllib.parse import urlsplit
 
 from ..errors import AlignError
 
 SAFE_METHODS = ("GET", "HEAD", "OPTIONS")
-LOOPBACK_NAMES = ("127.0.0.1", "localhost", "::1", "[::1]")
+# letters, digits and the punctuation of a host name, an IPv4 address, a bracketed IPv6 address and
+# a port: no userinfo ('@'), path, query, percent-escapes or white space, which a Host never needs
+HOST_CHARACTERS = frozenset(string.ascii_letters + string.digits + ".-:[]")
 NAME_PATTERN = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")
 
 
@@ -81,12 +90,12 @@ def token_matches(expected: str, given: str | None) -> bool:
 class Guard:
     """ASGI middleware: Host check, token check and body limit, before any route runs."""
 
-    def __init__(self, app, *, token: str, token_for_reads: bool, check_host: bool, max_body: int,
+    def __init__(self, app, *, token: str, token_for_reads: bool, loopback_only: bool, max_body: int,
                  public_pages: tuple[str, ...] = ()):
         self.app = app
         self.token = token
         self.token_for_reads = token_for_reads
-        self.check_host = check_host
+        self.loopback_only = loopback_only  # Host must name loopback (bound to loopback)
         self.max_body = max_body
         self.public_pages = public_pages  # paths a GET may read without the token (pages holding no data)
 
@@ -96,9 +105,10 @@ class Guard:
         method = scope["method"].upper()
         headers = {k.decode("latin-1").lower(): v.decode("latin-1") for k, v in scope.get("headers", [])}
 
-        if self.check_host and _host_name(headers.get("host", "")) not in LOOPBACK_NAMES:
-            return await _refuse(send, 403, "the Host header does not name this machine's loopback",
-                                 "call the service as http://127.0.0.1:PORT")
+        hosts = [v.decode("latin-1") for k, v in scope.get("headers", []) if k.lower() == b"host"]
+        refusal = host_refusal(hosts, loopback_only=self.loopback_only)
+        if refusal:
+            return await _refuse(send, *refusal)
         public = method in ("GET", "HEAD") and scope.get("path") in self.public_pages
         needs_token = method not in SAFE_METHODS or (self.token_for_reads and not public)
         if needs_token and not token_matches(self.token, _given_token(headers)):
@@ -140,10 +150,57 @@ class Guard:
         return await self.app(scope, replay, send)
 
 
-def _host_name(host: str) -> str:
-    if host.startswith("["):  # [::1]:8765
-        return host.split("]")[0] + "]"
-    return host.rsplit(":", 1)[0] if host.count(":") == 1 else host
+class MalformedHost(ValueError):
+    """A Host header value that is not ``name[:port]``."""
+
+
+def parse_host(value: str) -> tuple[str, int | None]:
+    """(name, port) of a Host header value: ``127.0.0.1:8765`` -> ("127.0.0.1", 8765), ``[::1]`` -> ("::1", None).
+
+    urllib's parser splits it; the value must then read back exactly as ``name[:port]`` (case
+    aside), so anything it tolerates but a Host may not hold (an empty port, leading zeros, text
+    after the port) is refused too. MalformedHost says what is wrong.
+    """
+    if not value:
+        raise MalformedHost("it is empty")
+    stray = sorted(set(value) - HOST_CHARACTERS)
+    if stray:
+        raise MalformedHost(f"{value!r} holds {''.join(stray)!r}, which a host name and port never do")
+    try:
+        parts = urlsplit("//" + value)
+        name, port = parts.hostname, parts.port
+    except ValueError as exc:  # a port that is not a number, unbalanced brackets, a bad IPv6 literal
+        raise MalformedHost(f"{value!r} is not a host name and port ({exc})") from None
+    if not name or port == 0:
+        raise MalformedHost(f"{value!r} has no host name" if not name else f"{value!r} names port 0")
+    canonical = (f"[{name}]" if ":" in name else name) + ("" if port is None else f":{port}")
+    if canonical != value.lower():
+        raise MalformedHost(f"{value!r} is not of the form name[:port] (read as {canonical!r})")
+    return name, port
+
+
+def is_loopback_name(name: str) -> bool:
+    if name == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(name).is_loopback
+    except ValueError:
+        return False  # any other name may resolve anywhere, which is what a rebinding page relies on
+
+
+def host_refusal(values: list[str], loopback_only: bool) -> tuple[int, str, str] | None:
+    """(status, message, hint) refusing the request's Host header(s), or None when they are acceptable."""
+    example = "call the service as http://127.0.0.1:PORT (or localhost:PORT, [::1]:PORT)"
+    if len(values) != 1:
+        return 400, f"the request has {len(values)} Host headers; HTTP/1.1 needs exactly one", example
+    try:
+        name, _ = parse_host(values[0])
+    except MalformedHost as exc:
+        return 400, f"the Host header is malformed: {exc}", example
+    if loopback_only and not is_loopback_name(name):
+        return 421, f"the Host header names {name!r}, not this machine's loopback; this service answers " \
+                    "only for 127.0.0.1, localhost and ::1", example
+    return None
 
 
 def _given_token(headers: dict) -> str | None:

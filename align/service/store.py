@@ -19,6 +19,8 @@ from typing import Callable, Iterator
 STATES = ("queued", "running", "finished", "failed", "cancelled")
 FINAL_STATES = ("finished", "failed", "cancelled")
 MAX_ATTEMPTS = 5  # a job whose worker died this many times is failed, not retried forever
+# SQLite's largest integer: a larger id names no job, and a larger count would overflow the driver
+MAX_INTEGER = (1 << 63) - 1
 
 SCHEMA = """
 CREATE TABLE IF NOT EXISTS jobs (
@@ -101,6 +103,8 @@ class JobStore:
         return job
 
     def get(self, job_id: int) -> dict | None:
+        if not 0 < job_id <= MAX_INTEGER:
+            return None
         with self.connect() as conn:
             return self._row(conn.execute("SELECT * FROM jobs WHERE id = ?", (job_id,)).fetchone())
 

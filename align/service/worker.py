@@ -110,7 +110,7 @@ def _attempt(job: dict, store: JobStore, settings: Settings, stop: threading.Eve
     job_id, spec, run_dir = job["id"], job["spec"], Path(job["run_dir"])
     home = Home(settings.home)
     recipe = recipe_from_toml(spec["recipe_toml"])
-    confine_recipe_paths(recipe, settings)  # again: a symlink may point elsewhere since it was submitted
+    confine_recipe_paths(recipe, settings, gallery=spec.get("index"))  # again: a link may point elsewhere by now
     if settings.workers > 1 and recipe.train.threads == 0:
         recipe.train.threads = max(1, (os.cpu_count() or 1) // settings.workers)  # jobs share the cores
 
