@@ -5,6 +5,9 @@ exported folders; onnxruntime runs the ONNX graph; the LoRA merge is checked aga
 W + (alpha/r)·B·A of Hu et al. 2021 (LoRA, eq. 3 and §4.1 scaling) computed by hand from the adapter
 tensors; the image side is rebuilt from image_side.json with timm alone and scikit-image's sample
 photos. The pooling in these tests is written out by hand, not imported from align.
+
+The LoRA tests read conftest's session run ``tiny_lora_run`` (rank 4, alpha 8, 64 px images,
+captions cut at 16 tokens), trained, evaluated and exported once for every module that needs one.
 """
 from __future__ import annotations
 
@@ -20,67 +23,12 @@ import torch
 from align import artifacts as A
 from align.cli import main as cli_main
 from align.errors import AlignError, FingerprintMismatch
-from align.recipe import recipe_from_toml
-from align.training.loop import train
-
-TINY_LORA = """
-name = "tiny-lora"
-[vision]
-image_size = 64  # at 32 px this tower pools photos to all-zero features
-[text]
-kind = "lora"
-lora_rank = 4
-lora_alpha = 8.0
-max_length = 16
-[train]
-steps = 6
-batch_size = 16
-lr = 5e-3
-warmup_steps = 1
-checkpoint_every = 0
-log_every = 2
-"""
-
-TINY_SCRATCH = """
-name = "tiny-scratch"
-[vision]
-image_size = 32
-[text]
-kind = "scratch"
-max_length = 16
-[text.scratch]
-width = 32
-layers = 1
-attention_heads = 2
-vocabulary_size = 200
-[train]
-steps = 3
-batch_size = 16
-warmup_steps = 1
-checkpoint_every = 0
-log_every = 1
-"""
+from align.training import train
+from recipes import tiny_recipe
 
 # several lengths, so every batch is padded, and one caption past max_length (truncated)
 CAPTIONS = ["seven", "a handwritten seven", "the digit four written by hand on a scanned form",
             "one", " ".join(["a caption much longer than the sixteen token limit of this tower"] * 3)]
-
-
-def _train(toml: str, shards, run_dir):
-    recipe = recipe_from_toml(toml, [f"data.shards={json.dumps(str(shards))}"])
-    train(recipe, run_dir)
-    return recipe
-
-
-@pytest.fixture(scope="module")
-def lora_export(small_digits_shards, tmp_path_factory):
-    from align.evaluate import evaluate_run
-
-    root = tmp_path_factory.mktemp("export-lora")
-    _train(TINY_LORA, small_digits_shards, root / "run")
-    evaluate_run(root / "run")  # so the card carries metrics
-    assert cli_main(["export", str(root / "run"), "--out", str(root / "export")]) == 0
-    return root / "run", root / "export"
 
 
 def _hand_pool(hidden: torch.Tensor, mask: torch.Tensor, weight: torch.Tensor) -> np.ndarray:
@@ -119,12 +67,12 @@ def _align_reference(run_dir, texts):
     return tower.embed(texts).numpy()
 
 
-def test_adapter_merged_and_onnx_agree(lora_export):
+def test_adapter_merged_and_onnx_agree(tiny_lora_run):
     from peft import PeftModel
     from safetensors.torch import load_file
     from transformers import AutoModel, AutoTokenizer
 
-    run_dir, export = lora_export
+    run_dir, export = tiny_lora_run
     reference = _align_reference(run_dir, CAPTIONS)
 
     # merged encoder, plain transformers, pooling by hand
@@ -173,11 +121,11 @@ def _plain_transformers_base(base_dir, adapter_dir, texts):
     return _hand_pool(hidden, batch["attention_mask"], load_file(str(adapter_dir / "projection.safetensors"))["weight"]), batch
 
 
-def test_merged_weight_is_w_plus_scaled_ba(lora_export):
+def test_merged_weight_is_w_plus_scaled_ba(tiny_lora_run):
     """Hu et al. 2021: the merged weight is W0 + (alpha / r) · B · A."""
     from safetensors.torch import load_file
 
-    _, export = lora_export
+    _, export = tiny_lora_run
     config = json.loads((export / A.EXPORT_ADAPTER / "adapter_config.json").read_text())
     adapter = load_file(str(export / A.EXPORT_ADAPTER / "adapter_model.safetensors"))
     base = load_file(str(Path(config["base_model_name_or_path"]) / "model.safetensors"))
@@ -212,14 +160,14 @@ def _timm_from_image_side(side: dict):
     return model.eval()
 
 
-def test_image_side_json_alone_rebuilds_the_image_embedding(lora_export):
+def test_image_side_json_alone_rebuilds_the_image_embedding(tiny_lora_run):
     import timm.data
     from skimage import data as samples
     from PIL import Image
 
     import align
 
-    _, export = lora_export
+    _, export = tiny_lora_run
     side = json.loads((export / A.IMAGE_SIDE).read_text())
     model = _timm_from_image_side(side)
 
@@ -246,13 +194,13 @@ def test_image_side_json_alone_rebuilds_the_image_embedding(lora_export):
     assert np.allclose(loaded.scores(["a cat"], photos), loaded.embed_text(["a cat"]) @ ours.T, atol=1e-6)
 
 
-def test_load_refuses_another_tower(lora_export, tmp_path):
+def test_load_refuses_another_tower(tiny_lora_run, tmp_path):
     import timm
     from safetensors.torch import save_file
 
     import align
 
-    _, export = lora_export
+    _, export = tiny_lora_run
     torch.manual_seed(0)
     # same architecture and names (classifier included, as the file align loads by name), other weights
     other = timm.create_model("efficientnet_lite0", pretrained=False)
@@ -262,10 +210,10 @@ def test_load_refuses_another_tower(lora_export, tmp_path):
         align.load(export, weights=path)
 
 
-def test_card_carries_recipe_data_hash_metrics_and_caution(lora_export):
+def test_card_carries_recipe_data_hash_metrics_and_caution(tiny_lora_run):
     from align.data.shards import read_manifest
 
-    run_dir, export = lora_export
+    run_dir, export = tiny_lora_run
     card = json.loads((export / A.CARD_JSON).read_text())
     metrics = json.loads((run_dir / A.METRICS).read_text())
     recipe_shards = card["recipe"]["data"]["shards"]
@@ -281,13 +229,13 @@ def test_card_carries_recipe_data_hash_metrics_and_caution(lora_export):
     assert "attention_mask" in readme and "projection.safetensors" in readme
 
 
-def test_tolerance_is_enforced(lora_export):
+def test_tolerance_is_enforced(tiny_lora_run):
     """A reference shifted by 2e-4 must fail the 1e-4 check the export runs on ONNX output."""
     from transformers import AutoTokenizer
 
     from align.export import TOLERANCE, enforce, max_abs_difference, onnx_runner
 
-    _, export = lora_export
+    _, export = tiny_lora_run
     tokenizer = AutoTokenizer.from_pretrained(str(export / A.EXPORT_TEXT_ENCODER))
     batches = [dict(tokenizer(CAPTIONS[:3], padding=True, truncation=True, return_tensors="pt"))]
     run = onnx_runner(export / A.EXPORT_ONNX)
@@ -297,8 +245,8 @@ def test_tolerance_is_enforced(lora_export):
         enforce("the ONNX model", shifted)
 
 
-def test_reexport_replaces_and_foreign_folder_is_refused(lora_export, tmp_path, capsys):
-    run_dir, export = lora_export
+def test_reexport_replaces_and_foreign_folder_is_refused(tiny_lora_run, tmp_path, capsys):
+    run_dir, export = tiny_lora_run
     again = tmp_path / "again"
     shutil.copytree(export, again)
     assert cli_main(["export", str(run_dir), "--out", str(again), "--no-onnx"]) == 0
@@ -312,7 +260,8 @@ def test_reexport_replaces_and_foreign_folder_is_refused(lora_export, tmp_path, 
 
 
 def test_scratch_tower_exports_whole(small_digits_shards, tmp_path):
-    _train(TINY_SCRATCH, small_digits_shards, tmp_path / "run")
+    train(tiny_recipe(small_digits_shards, "scratch", name="tiny-scratch", text__max_length=16,
+                      train__steps=3, train__lr=5e-4, train__threads=0), tmp_path / "run")
     from align.export import export_run
 
     info = export_run(tmp_path / "run", tmp_path / "export")
