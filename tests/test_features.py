@@ -284,29 +284,13 @@ def test_align_features_command_builds_then_reuses(small_digits_shards, tmp_path
     assert sorted(load_feature_cache(p).fingerprint["split"] for p in entries) == ["train", "val"]
 
 
-TRAIN_WITH_VIEWS = """
-name = "views"
-[vision]
-image_size = 32
-views = 2
-[text]
-kind = "lora"
-max_length = 12
-[train]
-steps = 3
-batch_size = 16
-warmup_steps = 1
-checkpoint_every = 0
-log_every = 1
-"""
-
-
 def test_training_samples_one_cached_view_per_epoch(small_digits_shards, tmp_path):
-    from align.recipe import recipe_from_toml
     from align.training import prepare_training_data, train
+    from recipes import tiny_recipe
 
-    recipe = recipe_from_toml(TRAIN_WITH_VIEWS, [f"data.shards={json.dumps(str(small_digits_shards))}",
-                                                 f"vision.feature_cache={json.dumps(str(tmp_path / 'cache'))}"])
+    recipe = tiny_recipe(small_digits_shards, "lora", name="views", vision__views=2,
+                         vision__feature_cache=str(tmp_path / "cache"), train__steps=3, train__lr=5e-4,
+                         train__threads=0)
     data = prepare_training_data(recipe, _console()[0])
     n = len(data.keys)
     assert data.image_views.shape == (n, 2, data.image_features.shape[1]) and data.image_views.dtype == torch.float16

@@ -9,26 +9,8 @@ import torch
 from align import artifacts as A
 from align.checkpoint import latest_checkpoint, list_checkpoints, load_weights
 from align.errors import AlignError
-from align.recipe import recipe_from_toml
 from align.training import train
-
-# MiniLM keeps its dropout (p=0.1) on in training, so an exact match also proves the RNG state
-# round-trips through the checkpoint.
-RESUME_RECIPE = """
-name = "resume"
-[vision]
-image_size = 32
-[text]
-kind = "full"
-max_length = 12
-[train]
-steps = 12
-batch_size = 16
-lr = 5e-4
-warmup_steps = 3
-checkpoint_every = 6
-log_every = 2
-"""
+from recipes import tiny_recipe
 
 
 def _weights(run_dir):
@@ -36,7 +18,11 @@ def _weights(run_dir):
 
 
 def test_resume_matches_uninterrupted(small_digits_shards, tmp_path):
-    recipe = recipe_from_toml(RESUME_RECIPE, [f"data.shards={json.dumps(str(small_digits_shards))}"])
+    # MiniLM keeps its dropout (p=0.1) on in training (a full fine-tune), so an exact match also
+    # proves the RNG state round-trips through the checkpoint.
+    recipe = tiny_recipe(small_digits_shards, "full", name="resume", train__steps=12, train__lr=5e-4,
+                         train__warmup_steps=3, train__checkpoint_every=6, train__log_every=2,
+                         train__threads=0)
     whole = tmp_path / "whole"
     train(recipe, whole)
 

@@ -18,8 +18,9 @@ from PIL import Image
 from align import artifacts as A
 from align.checkpoint import latest_checkpoint, load_weights
 from align.errors import AlignError
-from align.recipe import ScratchConfig, TextConfig, recipe_from_toml
+from align.recipe import ScratchConfig, TextConfig
 from align.text import build_text_tower, default_text_model_dir
+from recipes import tiny_recipe
 
 # Trade words the MiniLM (BERT uncased WordPiece) tokenizer splits into 3+ pieces, e.g.
 # zellige -> ze ##lli ##ge; one per digit class so they carry the label.
@@ -145,29 +146,12 @@ def test_auto_needs_captions_or_the_runs_vocabulary(tmp_path):
         build_text_tower(TextConfig(new_tokens="auto"), 8, tokenizer_dir=tmp_path / "none")
 
 
-EXTEND_RECIPE = """
-name = "vocab"
-[vision]
-image_size = 32
-[text]
-kind = "lora"
-max_length = 16
-new_tokens = "auto"
-[train]
-steps = 8
-batch_size = 16
-lr = 5e-3
-warmup_steps = 1
-checkpoint_every = 0
-log_every = 4
-"""
-
-
 @pytest.fixture(scope="module")
 def extended_run(tile_word_shards, tmp_path_factory):
     from align.training.loop import train
 
-    recipe = recipe_from_toml(EXTEND_RECIPE, [f"data.shards={json.dumps(str(tile_word_shards))}"])
+    recipe = tiny_recipe(tile_word_shards, "lora", name="vocab", text__max_length=16, text__new_tokens="auto",
+                         train__steps=8, train__lr=5e-3, train__log_every=4, train__threads=0)
     run_dir = tmp_path_factory.mktemp("vocab-run") / "run"
     train(recipe, run_dir)
     return recipe, run_dir
