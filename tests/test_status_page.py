@@ -16,30 +16,12 @@ import numpy as np
 import pytest
 from PIL import Image
 
+from recipes import tiny_toml
 from service_harness import REPO, Browser, Service, chromium
 
 SCREENSHOT = REPO / "tests" / "artifacts" / "status-page.png"
-PAGE_RECIPE = """
-name = "page-demo"
-[vision]
-image_size = 32
-[text]
-kind = "scratch"
-max_length = 12
-[text.scratch]
-width = 64
-layers = 1
-attention_heads = 2
-vocabulary_size = 300
-[train]
-steps = 10
-batch_size = 16
-lr = 2e-3
-warmup_steps = 2
-checkpoint_every = 0
-log_every = 1
-threads = 1
-"""
+PAGE_RECIPE = tiny_toml("scratch", name="page-demo", text__scratch__width=64, text__scratch__vocabulary_size=300,
+                        train__steps=10, train__warmup_steps=2)
 LOSS_BLUE = (0x2F, 0x6F, 0xDF)  # the loss line's colour in align/service/page.py
 
 pytestmark = pytest.mark.skipif(chromium() is None, reason="needs Debian's chromium package (.ci/run installs it)")

@@ -17,36 +17,19 @@ from rich.console import Console
 from align import artifacts as A
 from align.data.shards import iter_images
 from align.evaluate import evaluate_run
-from align.recipe import recipe_from_toml
 from align.training import prepare_training_data, train
 from align.vision import load_image_tower, weights_sha256
+from recipes import tiny_recipe
 
 pytestmark = pytest.mark.slow
-
-DIGITS_RECIPE = """
-name = "digits"
-[vision]
-image_size = 96
-[text]
-kind = "lora"
-lora_rank = 16
-lora_alpha = 32.0
-max_length = 16
-[train]
-steps = 200
-batch_size = 64
-lr = 1e-3
-warmup_steps = 15
-checkpoint_every = 0
-log_every = 20
-[eval]
-prompts = ["a photo of the number {}.", "an image showing the digit {}."]
-"""
 
 
 @pytest.fixture(scope="module")
 def digits_run(digits_shards, tmp_path_factory):
-    recipe = recipe_from_toml(DIGITS_RECIPE, [f"data.shards={json.dumps(str(digits_shards))}"])
+    recipe = tiny_recipe(digits_shards, "lora", name="digits", vision__image_size=96, text__lora_rank=16,
+                         text__lora_alpha=32.0, text__max_length=16, train__steps=200, train__batch_size=64,
+                         train__lr=1e-3, train__warmup_steps=15, train__log_every=20, train__threads=0,
+                         eval__prompts=["a photo of the number {}.", "an image showing the digit {}."])
     run_dir = tmp_path_factory.mktemp("runs") / "digits"
     tower_before = load_image_tower(recipe.vision)
     hash_before = weights_sha256(tower_before.model)
