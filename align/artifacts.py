@@ -3,6 +3,8 @@
 # packed data (align pack)
 MANIFEST = "manifest.json"
 REJECTED = "rejected.jsonl"
+FAILED_PACK_REJECTED = "rejected-of-failed-pack.jsonl"  # a pack that packed nothing reports here, beside the old pack
+PACK_STAGING = ".pack.partial"  # a pack in progress; moved into place only when it succeeds
 SHARD_PATTERN = "{split}-{index:06d}.tar"
 SPLITS = ("train", "val")
 

@@ -25,7 +25,7 @@ def _recipe(args):
 def cmd_pack(args) -> int:
     from .data.pack import pack_source
     pack_source(args.source, args.out, val_fraction=args.val_fraction, shard_size=args.shard_size,
-                max_caption_chars=args.max_caption_chars, console=console)
+                max_caption_chars=args.max_caption_chars, image_roots=args.image_root, console=console)
     return 0
 
 
@@ -174,6 +174,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--val-fraction", type=float, default=0.1, help="share of samples in the val split (by key hash)")
     p.add_argument("--shard-size", type=int, default=1000, help="samples per tar shard")
     p.add_argument("--max-caption-chars", type=int, default=1000, help="longer captions are rejected")
+    p.add_argument("--image-root", action="append", default=[], metavar="DIR",
+                   help="a folder whose images a CSV/JSONL may name besides its own folder (repeatable); "
+                        "without it, rows naming images elsewhere are refused")
     p.set_defaults(func=cmd_pack)
 
     p = sub.add_parser("train", help="train the text tower of a recipe")

@@ -20,7 +20,7 @@ import webdataset
 from PIL import Image
 from rich.console import Console
 
-from align.artifacts import MANIFEST, REJECTED
+from align.artifacts import FAILED_PACK_REJECTED, MANIFEST, REJECTED
 from align.data.pack import pack_source
 from align.errors import DataError
 from align.labels import canonical_labels, label_group
@@ -189,9 +189,12 @@ def test_repacking_into_the_same_folder_leaves_no_stale_shards(photo_folder: Pat
     out = tmp_path / "s"
     pack_source(photo_folder, out, val_fraction=0.0, shard_size=1, console=quiet())
     assert len(list(out.glob("train-*.tar"))) == len(GOOD_KEYS)
+    (out / "features").mkdir()  # the default feature cache: keyed by content hash, kept across repacks
+    (out / "features" / "entry").write_text("cached")
     manifest = pack_source(photo_folder, out, val_fraction=0.0, shard_size=100, console=quiet())
     assert sorted(p.name for p in out.glob("*.tar")) == manifest["splits"]["train"]["shards"] == ["train-000000.tar"]
-    assert not list(out.glob(".*"))  # no temporary files left behind
+    assert not list(out.glob(".*"))  # no staging folder or temporary files left behind
+    assert (out / "features" / "entry").read_text() == "cached"
 
 
 def test_csv_source_with_label_columns(tmp_path: Path):
@@ -212,7 +215,9 @@ def test_csv_source_with_label_columns(tmp_path: Path):
         "img/cup.png,,brown,kitchen",
     ]
     (src / "pairs.csv").write_text("\n".join(rows) + "\n", encoding="utf-8")
-    manifest = pack_source(src / "pairs.csv", tmp_path / "out", val_fraction=0.0, console=quiet())
+    # the astronaut lies outside the table's folder: packed only when its folder is allowed
+    manifest = pack_source(src / "pairs.csv", tmp_path / "out", val_fraction=0.0, console=quiet(),
+                           image_roots=[outside.parent])
 
     samples = {s["__key__"]: s for s in read_with_webdataset(tmp_path / "out", manifest, "train")}
     # the key rule of the pack format: the path as written, minus extension and leading "/", with
@@ -271,10 +276,13 @@ def test_nothing_usable_is_an_error_with_the_report_written(tmp_path: Path):
     src = tmp_path / "bad"
     write_sample(src, "one.png", small(skimage.data.coffee()), "")
     write_sample(src, "two.jpg", b"not a jpeg at all", "a caption")
-    with pytest.raises(DataError, match="nothing usable .* 2 samples seen, all rejected"):
+    with pytest.raises(DataError, match="nothing usable .* 2 samples seen, all rejected") as failed:
         pack_source(src, tmp_path / "out", console=quiet())
-    assert len((tmp_path / "out" / REJECTED).read_text().splitlines()) == 2
-    assert not (tmp_path / "out" / MANIFEST).exists()
+    report = tmp_path / "out" / FAILED_PACK_REJECTED
+    assert str(report) in failed.value.message and "empty_caption x1" in failed.value.hint
+    assert len(report.read_text().splitlines()) == 2
+    assert not (tmp_path / "out" / MANIFEST).exists() and not (tmp_path / "out" / REJECTED).exists()
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == [FAILED_PACK_REJECTED]  # no half pack
 
 
 def test_source_mistakes_raise_data_errors_with_hints(tmp_path: Path):

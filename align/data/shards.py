@@ -4,22 +4,28 @@ Every reader walks a split in one canonical order: shards in manifest order, sam
 ``load_table`` and ``iter_images`` therefore agree row by row, which is what lets the feature cache
 line image features up with captions by position.
 
+Damage: an image that fails to decode is skipped and counted (``iter_images``' ``skipped``, the
+feature cache's ``skipped.txt``); the rest of its shard is read as usual. A shard that is no longer
+a whole tar archive (cut short, overwritten) stops the read with a ``DataError`` naming the file and
+the byte where it breaks: past that point its samples can no longer be matched with their captions,
+and only packing again brings them back.
+
 webdataset (and the torch it imports) is loaded only by the functions that read tar members, so
 asking for the manifest stays cheap.
 """
 from __future__ import annotations
 
-import io
 import json
 import tarfile
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Iterator
 
-from PIL import Image, ImageOps
+from PIL import Image
 
 from ..artifacts import MANIFEST, SPLITS
 from ..errors import DataError
+from .pixels import decode_image  # the tower's decoding; the feature build and align.load import it from here
 
 IMAGE_EXTENSIONS = ("jpg", "png")  # what pack writes (anything else was re-encoded as PNG)
 _PACK_HINT = "run `align pack SOURCE --out DIR` first"
@@ -64,18 +70,84 @@ def split_shards(shards_dir: str | Path, split: str, *, allow_empty: bool = Fals
     return paths
 
 
-def _samples(urls: list[str], select=None) -> Iterator[dict]:
-    """webdataset's own grouping of tar members into samples, in tar order, no shuffling."""
+def shard_damage(path: Path) -> str | None:
+    """Where a shard stops being a whole tar archive, in words; None when every member is complete.
+
+    Only headers are read (data is skipped by seeking), so this costs a few reads per member.
+    """
+    size = path.stat().st_size
+    last = None
+    try:
+        with tarfile.open(path, "r:") as tar:
+            for member in tar:
+                end = member.offset_data + member.size
+                if end > size:
+                    return (f"it is cut short at byte {size:,}, inside member {member.name} "
+                            f"(its data needs bytes {member.offset_data:,} to {end:,})")
+                last = member.name
+            next_header = tar.offset
+    except tarfile.TarError as exc:
+        # at byte 0 tarfile raises; later it stops at the first bad header, which the tail check finds
+        return f"it is not a tar archive from byte 0 ({exc})"
+    with path.open("rb") as fh:
+        fh.seek(next_header)
+        tail = fh.read()
+    after = f"after member {last}" if last else "before its first member"
+    if not tail:  # a complete archive ends with zero blocks after its last member
+        return f"it is cut short at byte {size:,}, right {after}: its end-of-archive marker is missing"
+    if tail.count(0) == len(tail):
+        return None
+    if len(tail) < tarfile.BLOCKSIZE:
+        return f"it is cut short at byte {size:,}, inside the header {after}"
+    return f"it has no readable tar header at byte {next_header:,} ({after})"
+
+
+def _damage_error(path: Path) -> DataError:
+    where = shard_damage(path)
+    return DataError(f"shard {path} is damaged: {where}. align skips and counts single images that fail to "
+                     "decode, but stops at a damaged shard: past the damage its samples can no longer be "
+                     "matched with their captions",
+                     hint=f"pack the source again into {path.parent} (`align pack SOURCE --out {path.parent}`); "
+                          "the damaged pack stays in place until the new one is complete")
+
+
+def _check_paths(shards: list[Path]) -> None:
+    for path in shards:
+        if shard_damage(path) is not None:
+            raise _damage_error(path)
+
+
+def _samples(shards: list[Path], expected: int, select=None) -> Iterator[dict]:
+    """webdataset's own grouping of tar members into samples, in tar order, no shuffling.
+
+    A shard cut at a member boundary or overwritten from a header on reads as a shorter one without
+    an error of its own: when fewer or more than ``expected`` samples came, the shards are checked.
+    """
     import webdataset
 
     # no node/worker splitting: every reader gets the whole split (in training, rank 0 reads it and
     # shares the table), so the order never depends on how many processes are running
-    dataset = webdataset.WebDataset(urls, shardshuffle=False, empty_check=False, nodesplitter=None,
-                                    workersplitter=None, select_files=select)
+    dataset = webdataset.WebDataset([str(p) for p in shards], shardshuffle=False, empty_check=False,
+                                    nodesplitter=None, workersplitter=None, select_files=select)
+    seen = 0
     try:
-        yield from dataset
+        for sample in dataset:
+            seen += 1
+            yield sample
     except (tarfile.TarError, ValueError, OSError) as exc:
-        raise DataError(f"a shard could not be read: {exc}", hint="the folder is damaged; " + _PACK_HINT + " again") from None
+        _check_paths(shards)  # names the shard and the byte
+        # webdataset appends (stream, url) to the exception's arguments; the first is the reason
+        reason = exc.args[0] if exc.args else type(exc).__name__
+        raise DataError(f"a shard in {shards[0].parent} could not be read: {reason}",
+                        hint="the folder is damaged; " + _PACK_HINT + " again") from None
+    if seen != expected:
+        _check_paths(shards)
+
+
+def check_split(shards_dir: str | Path, split: str) -> None:
+    """DataError naming the first damaged shard of a split (file, byte). For a reader about to hand
+    the split to worker processes: an error raised there comes back wrapped in its traceback."""
+    _check_paths(split_shards(shards_dir, split))
 
 
 def _metadata_only(name: str) -> bool:
@@ -99,13 +171,19 @@ def load_table(shards_dir: str | Path, split: str) -> SplitTable:
     """Keys, captions and labels of a split; image members are skipped, not decoded."""
     shards = split_shards(shards_dir, split)
     manifest = read_manifest(shards_dir)
-    keys, captions, labels = [], [], []
-    for sample in _samples([str(p) for p in shards], select=_metadata_only):
-        keys.append(sample["__key__"])
-        captions.append(sample["txt"].decode("utf-8"))
-        labels.append(json.loads(sample["json"]) if "json" in sample else {})
     expected = manifest["splits"][split]["samples"]
-    if len(keys) != expected:
+    keys, captions, labels = [], [], []
+    for sample in _samples(shards, expected, select=_metadata_only):
+        keys.append(sample["__key__"])
+        try:
+            captions.append(sample["txt"].decode("utf-8"))
+            labels.append(json.loads(sample["json"]) if "json" in sample else {})
+        except (KeyError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+            _check_paths(shards)  # a sample cut off by a damaged shard: name the shard and the byte
+            raise DataError(f"sample {sample['__key__']} in {sample.get('__url__', shards_dir)} has a damaged "
+                            f"caption or labels member ({type(exc).__name__}: {exc})",
+                            hint="the shards were changed after packing; " + _PACK_HINT + " again") from None
+    if len(keys) != expected:  # the shards are whole (or _samples had said so), yet hold other samples
         raise DataError(f"split '{split}' in {shards_dir} holds {len(keys)} samples but its manifest "
                         f"says {expected}", hint="the shards were changed after packing; " + _PACK_HINT + " again")
     return SplitTable(keys, captions, labels, manifest["splits"][split]["content_hash"], shards)
@@ -124,21 +202,15 @@ def iter_image_bytes(shards_dir: str | Path, split: str) -> Iterator[tuple[str, 
     A sample without an image member is left out; ``iter_images`` reports such samples.
     """
     shards = split_shards(shards_dir, split)  # checked now, not at the first next()
+    expected = read_manifest(shards_dir)["splits"][split]["samples"]
 
     def generate():
-        for sample in _samples([str(p) for p in shards]):
+        for sample in _samples(shards, expected):
             member = _image_member(sample)
             if member is not None:
                 yield sample["__key__"], member[0], member[1]
 
     return generate()
-
-
-def decode_image(data: bytes) -> Image.Image:
-    """Decode packed bytes to an upright RGB image (EXIF orientation applied, as a viewer shows it)."""
-    with Image.open(io.BytesIO(data)) as image:
-        image = ImageOps.exif_transpose(image)
-        return image.convert("RGB")
 
 
 def iter_images(shards_dir: str | Path, split: str,
@@ -149,9 +221,10 @@ def iter_images(shards_dir: str | Path, split: str,
     given) so the caller can report how many were lost and drop the matching table rows.
     """
     shards = split_shards(shards_dir, split)
+    expected = read_manifest(shards_dir)["splits"][split]["samples"]
 
     def generate():
-        for sample in _samples([str(p) for p in shards]):
+        for sample in _samples(shards, expected):
             member = _image_member(sample)
             try:
                 if member is None:

@@ -14,7 +14,7 @@ from typing import Iterator
 
 import torch
 
-from ..data.shards import decode_image, iter_image_bytes
+from ..data.shards import check_split, decode_image, iter_image_bytes
 from .fingerprint import AUGMENTATION
 
 
@@ -90,6 +90,8 @@ def decoded_stream(dataset: DecodedSamples, workers: int):
     """Iterate ``dataset`` here (``workers <= 0``) or in that many DataLoader worker processes."""
     if workers <= 0:
         return iter(dataset)
+    # a damaged shard is named here: raised in a worker, the error would come back as its traceback
+    check_split(dataset.shards_dir, dataset.split)
     loader = torch.utils.data.DataLoader(dataset, batch_size=None, num_workers=workers, collate_fn=_as_is,
                                          worker_init_fn=_one_thread, prefetch_factor=8)
     return iter(loader)
