@@ -34,6 +34,7 @@ from align.offline import offline_env
 from align.recipe import recipe_from_toml
 from align.run import build_models, trainable_parameters
 from align.training import prepare_training_data, train
+from recipes import tiny_toml
 
 ROOT = Path(__file__).resolve().parent.parent
 WORLD, BATCH, STEPS = 2, 16, 2
@@ -41,28 +42,14 @@ WORLD, BATCH, STEPS = 2, 16, 2
 
 def _toml(kind: str, loss: str, chunk_size: int) -> str:
     # lr is large next to the tolerance on purpose: a wrong gradient moves weights by ~lr, 100x the tolerance
-    return f"""
-name = "dist"
-[vision]
-image_size = 32
-[text]
-kind = "{kind}"
-max_length = 12
-lora_dropout = 0.1
-[loss]
-kind = "{loss}"
-block_size = 5
-[train]
-steps = {STEPS}
-batch_size = {BATCH}
-chunk_size = {chunk_size}
-length_buckets = false
-lr = 1e-3
-warmup_steps = 0
-checkpoint_every = 0
-log_every = 1
-threads = 1
-"""
+    return tiny_toml(kind, name="dist", text__lora_dropout=0.1, loss__kind=loss, loss__block_size=5,
+                     train__steps=STEPS, train__batch_size=BATCH, train__chunk_size=chunk_size,
+                     train__length_buckets=False, train__lr=1e-3, train__warmup_steps=0)
+
+
+def _recipe(shards, kind: str, loss: str, chunk_size: int):
+    """The recipe a worker reads from the same TOML text."""
+    return recipe_from_toml(_toml(kind, loss, chunk_size), [f"data.shards={json.dumps(str(shards))}"])
 
 
 # (name, text kind, loss, chunk_size under two processes, chunk_size of the one-process reference,
@@ -94,14 +81,14 @@ def runs(small_digits_shards, tmp_path_factory):
     assert proc.returncode == 0, proc.stdout[-3000:] + proc.stderr[-6000:]
     reports = [json.loads((out / "two" / f"rank{r}.json").read_text()) for r in range(WORLD)]
 
-    recipe = recipe_from_toml(_toml("full", "softmax", 0), [f"data.shards={json.dumps(str(small_digits_shards))}"])
+    recipe = _recipe(small_digits_shards, "full", "softmax", 0)
     data = prepare_training_data(recipe, Console(stderr=True, quiet=True))
     assert data.keys == reports[0]["keys"]
     # the same rows, bit for bit: the image tower ran with another thread count in the workers
     data.image_features = torch.load(out / "two" / "image_features.pt", weights_only=True)
     one, starts, threads = {}, {}, torch.get_num_threads()
     for name, kind, loss, _, ref_chunk, _ in CASES:
-        ref = recipe_from_toml(_toml(kind, loss, ref_chunk), [f"data.shards={json.dumps(str(small_digits_shards))}"])
+        ref = _recipe(small_digits_shards, kind, loss, ref_chunk)
         train(ref, out / "one" / name, console=Console(stderr=True, quiet=True), data=data)
         if (kind, loss) not in starts:  # the seeded initial weights, to measure how far a step moves them
             tower, loss_fn = build_models(ref, out / "one" / name, data.image_features.shape[1], data.captions)
