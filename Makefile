@@ -23,10 +23,12 @@ demo: $(STAMP)
 test: $(STAMP)
 	$(BIN)/python -m pytest -q
 
-# throughput (tools/bench.py, several minutes on 2 cores), then memory (tools/bench_memory.py) when present
+# throughput (tools/bench.py, several minutes on 2 cores), then memory (tools/bench_memory.py) when present,
+# then gallery search (tools/bench_index.py; needs ~12 GB of memory at its default 1M x 1280)
 bench: $(STAMP)
 	$(BIN)/python tools/bench.py
 	@if [ -f tools/bench_memory.py ]; then $(BIN)/python tools/bench_memory.py; fi
+	$(BIN)/python tools/bench_index.py  # gallery search at 1M x 1280: approximate index build, p50/p95, recall@10
 
 clean:
 	rm -rf runs features demo_work bench_out

@@ -48,6 +48,10 @@ TEXT_HEAD_README = "README.md"
 INDEX_INFO = "index.json"
 INDEX_EMBEDDINGS = "embeddings.npy"
 INDEX_KEYS = "keys.txt"
+INDEX_PARQUET = "gallery.parquet"  # key, vector, caption and label columns, for vector databases
+INDEX_ANN = "approximate.faiss"  # the on-disk approximate index (faiss IVF, 8-bit codes)
+INDEX_LABELS = "labels.json"  # label fields and their distinct values, for filtered search
+INDEX_LABEL_CODES = "label_codes.npy"  # (N, F) int32: row i's value of each field, -1 when it has none
 
 # service home (align serve --home DIR)
 SERVICE_DB = "jobs.db"

@@ -88,18 +88,21 @@ def cmd_export(args) -> int:
 def cmd_index(args) -> int:
     from .index import build_index
     build_index(args.export_dir, args.source, args.out, weights=args.weights, embeddings=args.embeddings,
-                keys=args.keys, sample=args.check_sample, console=console)
+                keys=args.keys, sample=args.check_sample, fmt=args.format, ann=args.ann, console=console)
     return 0
 
 
 def cmd_query(args) -> int:
     import json
 
-    from .index import query_index
-    backend = "faiss" if args.faiss else args.backend
-    answer = query_index(args.index, args.text, k=args.k, backend=backend, export_dir=args.export)
+    from .index import parse_where, query_index
+    if sum((args.faiss, args.exact, args.backend != "auto")) > 1:
+        raise AlignError("--backend, --faiss and --exact each choose the backend", "give one of them")
+    backend = "faiss" if args.faiss else "exact" if args.exact else args.backend
+    answer = query_index(args.index, args.text, k=args.k, backend=backend, export_dir=args.export,
+                         where=parse_where(args.where))
     if args.json:
-        print(json.dumps(answer, ensure_ascii=False))
+        print(json.dumps(answer, ensure_ascii=False, allow_nan=False))  # strict JSON: no bare NaN, ever
         return 0
     from rich.table import Table
     for item in answer["queries"]:
@@ -108,7 +111,7 @@ def cmd_query(args) -> int:
         table.add_column("key")
         table.add_column("score", justify="right")
         for hit in item["results"]:
-            table.add_row(str(hit["rank"]), hit["key"], f"{hit['score']:.4f}")
+            table.add_row(str(hit["rank"]), hit["key"], "n/a" if hit["score"] is None else f"{hit['score']:.4f}")
         Console().print(table)
     return 0
 
@@ -227,6 +230,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--embeddings", help="adopt these stored image embeddings (.npy, N x D) instead of embedding")
     p.add_argument("--keys", help="with --embeddings: one key per row (packed sample key or path in SOURCE)")
     p.add_argument("--check-sample", type=int, default=8, help="images re-embedded to check adopted embeddings")
+    p.add_argument("--format", choices=("both", "npy", "parquet"), default="both",
+                   help="embeddings.npy + keys.txt and gallery.parquet (both), or only one of them")
+    p.add_argument("--ann", choices=("auto", "yes", "no"), default="auto",
+                   help="build the on-disk approximate index: auto (from 50,000 images of a 1280-wide tower), yes, no")
     p.set_defaults(func=cmd_index)
 
     p = sub.add_parser("query", help="search a gallery index with text")
@@ -234,9 +241,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("text", nargs="+", help="one or more query texts")
     p.add_argument("-k", type=int, default=10, help="results per query")
     p.add_argument("--json", action="store_true", help="print the results as one JSON object")
-    p.add_argument("--backend", choices=("auto", "numpy", "faiss"), default="auto",
-                   help="exact inner-product search: numpy, faiss IndexFlatIP, or auto (faiss for large galleries)")
+    p.add_argument("--backend", choices=("auto", "exact", "numpy", "faiss", "ann"), default="auto",
+                   help="numpy or faiss IndexFlatIP (exact), ann (the index's approximate one), exact (numpy or "
+                        "faiss by size), auto (ann when the index has one, else exact)")
     p.add_argument("--faiss", action="store_true", help="same as --backend faiss")
+    p.add_argument("--exact", action="store_true", help="same as --backend exact: never the approximate index")
+    p.add_argument("--where", action="append", default=[], metavar="FIELD=VALUE",
+                   help="only samples whose label FIELD is VALUE (repeatable: fields AND, values of one field OR)")
     p.add_argument("--export", help="the export to embed queries with (default: the one the index was built with)")
     p.set_defaults(func=cmd_query)
 

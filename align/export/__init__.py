@@ -7,17 +7,20 @@ side's contract, and a card.
                            are the whole tower: text_encoder/ holds them, once)
     DIR/text_encoder/      merged, self-contained encoder (plain ``transformers.AutoModel``), its
                            tokenizer, projection.safetensors, head.json + README.md (pool, project,
-                           normalise)
+                           normalise); also a sentence-embedding model folder (``SentenceTransformer(DIR)``:
+                           modules.json, 1_Pooling/, 2_Dense/, 3_Normalize/)
     DIR/text_encoder.onnx  input_ids, attention_mask (int64, dynamic batch and sequence) ->
                            embedding (B, D), L2-normalised
     DIR/image_side.json    the frozen tower: name, weights sha256, preprocessing, pooling, norm
     DIR/card.json, CARD.md recipe, data manifest hash, metrics, embedding size, temperature, use, limits
 
-Every export is checked before it is kept: the merged encoder reloaded from disk and the ONNX model
-(run by onnxruntime) must reproduce the trained tower's embeddings within ``TOLERANCE`` on padded
+Every export is checked before it is kept: the merged encoder reloaded from disk, the sentence-embedding
+folder (loaded by sentence-transformers where it is installed) and the ONNX model (run by onnxruntime) must
+reproduce the trained tower's embeddings within ``TOLERANCE`` on padded
 batches of several shapes. The folder is written under a temporary name and swapped in at the end.
 
     writers.py  adapter, merged encoder, ONNX, head.json
+    sentence.py the sentence-embedding module files in the merged encoder's folder
     checks.py   reloading each form and comparing it with the trained tower
     card.py     image_side.json and the card
 """
@@ -41,7 +44,9 @@ from ..run import RunDir
 from ..text import TextKind, TextTower, text_kind
 from ..vision import FrozenImageTower, shared_image_tower
 from .card import build_card, image_side_record, render_card
-from .checks import TOLERANCE, check_onnx, check_reloaded, enforce, max_abs_difference, onnx_runner
+from .checks import (TOLERANCE, check_onnx, check_reloaded, check_sentence_model, enforce, max_abs_difference,
+                     onnx_runner)
+from .sentence import write_sentence_modules
 from .writers import FORMAT_VERSION, ONNX_OPSET, export_onnx, text_head, write_adapter, write_text_encoder
 
 __all__ = ["TOLERANCE", "enforce", "export_run", "max_abs_difference", "onnx_runner"]
@@ -68,7 +73,8 @@ def export_run(run_dir: str | Path, out: str | Path, *, checkpoint: str | Path |
     run, out = RunDir(run_dir), Path(out)
     check_output_dir(out, A.EXPORT_INFO, "export")
     recipe = run.recipe()
-    steps = ["loading the run", "adapter", "merged encoder", "checking the merged encoder"] + \
+    steps = ["loading the run", "adapter", "merged encoder", "checking the merged encoder",
+             "checking the sentence-embedding folder"] + \
             (["ONNX", "checking ONNX with onnxruntime"] if onnx else []) + ["image side and card"]
     out.parent.mkdir(parents=True, exist_ok=True)
     temp = Path(tempfile.mkdtemp(dir=out.parent, prefix=f".{out.name}.partial-"))
@@ -116,9 +122,12 @@ def _write_and_check_text(trained: _Trained, temp: Path, onnx: bool, phase, cons
         write_adapter(tower, kind, temp / A.EXPORT_ADAPTER, head, trained.recipe.text)
     phase()
     write_text_encoder(tower, kind, temp / A.EXPORT_TEXT_ENCODER, head)
+    write_sentence_modules(temp / A.EXPORT_TEXT_ENCODER, tower.projection.weight, tower.max_length)
     phase()
-    checks, batches = check_reloaded(tower, kind, temp / A.EXPORT_TEXT_ENCODER, temp / A.EXPORT_ADAPTER,
-                                     trained.recipe)
+    checks, captions, batches = check_reloaded(tower, kind, temp / A.EXPORT_TEXT_ENCODER, temp / A.EXPORT_ADAPTER,
+                                               trained.recipe)
+    phase()
+    checks |= check_sentence_model(tower, temp / A.EXPORT_TEXT_ENCODER, captions)
     if onnx:
         phase()
         export_onnx(temp / A.EXPORT_TEXT_ENCODER, temp / A.EXPORT_ONNX)
@@ -142,7 +151,8 @@ def _write_records(trained: _Trained, temp: Path, checks: dict, onnx: bool) -> d
     return {"format_version": FORMAT_VERSION, "align_version": __version__, "kind": trained.tower.kind,
             "embedding_dim": dim, "max_length": trained.tower.max_length,
             "trained_weights": adapter or A.EXPORT_TEXT_ENCODER,
-            "parts": {"adapter": adapter, "text_encoder": A.EXPORT_TEXT_ENCODER, "onnx": A.EXPORT_ONNX if onnx else None,
+            "parts": {"adapter": adapter, "text_encoder": A.EXPORT_TEXT_ENCODER,
+                      "sentence_model": A.EXPORT_TEXT_ENCODER, "onnx": A.EXPORT_ONNX if onnx else None,
                       "image_side": A.IMAGE_SIDE, "card": [A.CARD_JSON, A.CARD_MD]},
             "onnx_io": {"inputs": {"input_ids": ["batch", "sequence"], "attention_mask": ["batch", "sequence"]},
                         "output": {"embedding": ["batch", dim]}, "dtype": "int64 in, float32 out",

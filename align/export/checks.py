@@ -15,6 +15,7 @@ import torch
 from ..api import load_adapter_encoder, load_text_encoder
 from ..errors import AlignError
 from ..text import TextKind, TextTower
+from .sentence import IDENTITY, read_sentence_modules
 
 TOLERANCE = 1e-4  # largest absolute difference allowed between any two forms of the text side
 
@@ -88,9 +89,10 @@ def probe_batches(tower: TextTower, recipe) -> tuple[list[list[str]], list[dict]
     return captions, [tower.tokenize(c) for c in captions]
 
 
-def check_reloaded(tower: TextTower, kind: TextKind, encoder_dir: Path, adapter_dir: Path, recipe) -> tuple[dict, list]:
+def check_reloaded(tower: TextTower, kind: TextKind, encoder_dir: Path, adapter_dir: Path,
+                   recipe) -> tuple[dict, list[list[str]], list[dict]]:
     """The merged encoder (and the adapter on its base, for kinds that write one), reloaded from disk with
-    the loaders ``align.load`` uses, against the trained tower; returns (checks, the probe batches)."""
+    the loaders ``align.load`` uses, against the trained tower; returns (checks, probe captions, their batches)."""
     merged, tokenizer, _ = load_text_encoder(encoder_dir)
     captions, batches = probe_batches(tower, recipe)
     check_tokenizer(tokenizer, captions, batches)
@@ -101,7 +103,34 @@ def check_reloaded(tower: TextTower, kind: TextKind, encoder_dir: Path, adapter_
         checks["adapter_max_abs_diff"] = max_abs_difference(batches, reference, torch_runner(adapter))
         enforce("the adapter on its base encoder", checks["adapter_max_abs_diff"])
     enforce("the merged encoder", checks["merged_max_abs_diff"])
-    return checks, batches
+    return checks, captions, batches
+
+
+def check_sentence_model(tower: TextTower, folder: Path, captions: list[list[str]]) -> dict:
+    """The sentence-embedding module files describe the tower (always), and, where the
+    sentence-transformers library is installed, its own loader reproduces the tower's embeddings."""
+    found = read_sentence_modules(folder)
+    weight = tower.projection.weight.detach().cpu().float()
+    if (found["types"] != ["Transformer", "Pooling", "Dense", "Normalize"] or not found["mean_pooling"]
+            or found["dense"]["bias"] or found["dense"]["activation_function"] != IDENTITY
+            or found["max_seq_length"] != tower.max_length or not torch.equal(found["weight"], weight)):
+        raise AlignError("export check failed: the sentence-embedding module files do not describe the tower",
+                         "report this as a bug, with the run folder")
+    try:
+        from sentence_transformers import SentenceTransformer
+    except ImportError:
+        return {"sentence_model_check": "module files only (sentence-transformers is not installed)"}
+    import logging
+
+    logging.getLogger("sentence_transformers").setLevel(logging.ERROR)  # its notes about the model card
+    model = SentenceTransformer(str(folder), device="cpu", local_files_only=True)
+    texts = [t for batch in captions for t in batch]
+    theirs = model.encode(texts, convert_to_numpy=True, show_progress_bar=False)  # (N, D)
+    ours = torch_runner(tower)(tower.tokenize(texts))
+    checks = {"sentence_model_check": "loaded by sentence-transformers",
+              "sentence_model_max_abs_diff": float(np.abs(theirs - ours).max())}
+    enforce("the sentence-embedding folder (sentence-transformers)", checks["sentence_model_max_abs_diff"])
+    return checks
 
 
 def check_onnx(tower: TextTower, path: Path, batches: list[dict]) -> dict:

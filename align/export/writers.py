@@ -42,6 +42,15 @@ mask = batch["attention_mask"].unsqueeze(-1).float()
 pooled = (hidden * mask).sum(1) / mask.sum(1).clamp(min=1)
 embedding = torch.nn.functional.normalize(pooled @ weight.T, dim=-1)          # (B, {dim})
 ```
+
+The folder is also a sentence-embedding model (modules.json: this encoder, mean pooling, the projection
+as a dense layer without bias or activation, L2 normalisation), so sentence-transformers loads it as is:
+
+```python
+from sentence_transformers import SentenceTransformer
+
+embedding = SentenceTransformer("text_encoder").encode(["a caption"])        # (B, {dim}), L2-normalised
+```
 """
 
 

@@ -11,7 +11,8 @@
     GET  /jobs/{id}/artifacts/PATH  one of them
     GET  /exports                   exports in HOME/exports (and whether each has a gallery index)
     POST /exports/{name}/embed      {"texts": [...]} -> L2-normalised embeddings
-    POST /exports/{name}/search     {"texts": [...], "k": 10} -> top-k of the export's gallery index
+    POST /exports/{name}/search     {"texts": [...], "k": 10, "where": {"glaze": "cobalt"}} -> top-k of the
+                                    export's gallery index (among the samples whose labels match "where")
 
 The token goes in ``Authorization: Bearer <token>`` only, never in an address. Errors are JSON
 ``{"error": message, "hint": how to fix}``: 400 a malformed request (a Host header that does not
@@ -64,7 +65,9 @@ class SearchRequest(BaseModel):
     model_config = ConfigDict(extra="forbid")
     texts: list[str] = Field(..., min_length=1, max_length=MAX_TEXTS)
     k: int = Field(10, ge=1, le=MAX_K)
-    backend: str = Field("auto", pattern="^(auto|numpy|faiss)$")
+    backend: str = Field("auto", pattern="^(auto|exact|numpy|faiss|ann)$")
+    # only samples whose labels match: {"glaze": "cobalt"} or {"glaze": ["cobalt", "ochre"]} (fields AND)
+    where: dict[str, str | list[str]] | None = None
 
 
 STATUS_OF = ((PathRefused, 403), (NotFound, 404), (Conflict, 409), (FingerprintMismatch, 409),
@@ -263,7 +266,7 @@ def export_routes(exports: ExportCache) -> APIRouter:
     @router.post("/exports/{name}/search")
     def search(name: str, request: SearchRequest):
         _check_texts(request.texts)
-        return exports.search(name, request.texts, request.k, request.backend)
+        return exports.search(name, request.texts, request.k, request.backend, request.where)
 
     return router
 

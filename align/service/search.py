@@ -154,7 +154,7 @@ class ExportCache:
         entry = self.get(name)
         return entry.batcher.embed(texts), entry  # (N, D)
 
-    def search(self, name: str, texts: list[str], k: int, backend: str = "auto") -> dict:
+    def search(self, name: str, texts: list[str], k: int, backend: str = "auto", where: dict | None = None) -> dict:
         from ..api import check_image_side_matches
         from ..index import load_index, query_answer
 
@@ -171,4 +171,4 @@ class ExportCache:
                 check_image_side_matches(entry.model.export_dir, index.info["image_fingerprint"])
                 entry.index, entry.index_stamp = index, _stamp(info)
         queries = entry.batcher.embed(texts)  # (Q, D)
-        return query_answer(entry.index, texts, queries, k, backend, started, {"export": name})
+        return query_answer(entry.index, texts, queries, k, backend, started, {"export": name}, where=where)
