@@ -19,23 +19,9 @@ from align.errors import RecipeError
 from align.recipe import recipe_from_toml
 from align.service.security import host_refusal, parse_host
 from service_harness import Service, file_tree, store_counts
+from recipes import tiny_toml
 
-RECIPE = """
-name = "bad-inputs"
-[vision]
-image_size = 32
-[text]
-kind = "lora"
-max_length = 12
-[train]
-steps = 4
-batch_size = 16
-lr = 2e-3
-warmup_steps = 1
-checkpoint_every = 2
-log_every = 1
-threads = 1
-"""
+RECIPE = tiny_toml("lora", name="bad-inputs", train__steps=4, train__checkpoint_every=2)
 
 
 @pytest.fixture(scope="module")

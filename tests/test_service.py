@@ -25,23 +25,10 @@ import pytest
 import torch
 
 from service_harness import REPO, Service, file_tree, store_counts, wait_for
+from recipes import tiny_toml
 
-TINY_RECIPE = """
-name = "svc-digits"
-[vision]
-image_size = 32
-[text]
-kind = "lora"
-max_length = 12
-[train]
-steps = 16
-batch_size = 16
-lr = 2e-3
-warmup_steps = 3
-checkpoint_every = 4
-log_every = 2
-threads = 1
-"""
+TINY_RECIPE = tiny_toml("lora", name="svc-digits", train__steps=16, train__warmup_steps=3, train__checkpoint_every=4,
+                        train__log_every=2)
 STEPS = 16
 # threads = 1: a tiny model gains nothing from a second thread, and when the machine is busy an
 # OpenMP team waits at every barrier for its descheduled twin (measured on a loaded 2-core box:

@@ -18,23 +18,10 @@ from align.recipe import recipe_from_toml
 from align.seeding import epoch_generator, seeded_permutation, stable_hash
 from align.training import EpochSampler, StepBatches, TrainingData, check_tower_untouched, prepare_training_data, train
 from align.vision import load_image_tower
+from recipes import tiny_toml
 
 REPO = Path(__file__).resolve().parent.parent
-ONE_STEP = """
-name = "one-step"
-[vision]
-image_size = 32
-[text]
-kind = "lora"
-max_length = 12
-[train]
-steps = 1
-batch_size = 16
-warmup_steps = 0
-checkpoint_every = 0
-log_every = 1
-threads = 1
-"""
+ONE_STEP = tiny_toml("lora", name="one-step", train__steps=1, train__warmup_steps=0, train__lr=5e-4)
 
 
 def test_stable_hash_is_the_same_in_another_process():
