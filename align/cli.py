@@ -24,8 +24,12 @@ def _recipe(args):
 
 def cmd_pack(args) -> int:
     from .data.pack import pack_source
+    from .data.vectors import VectorSource
+    vectors = (VectorSource(Path(args.vectors), args.vector_model or "", Path(args.vector_keys) if args.vector_keys
+                            else None, args.key_column, args.vector_column, args.vector_dim) if args.vectors else None)
     pack_source(args.source, args.out, val_fraction=args.val_fraction, shard_size=args.shard_size,
-                max_caption_chars=args.max_caption_chars, image_roots=args.image_root, console=console)
+                max_caption_chars=args.max_caption_chars, image_roots=args.image_root, console=console,
+                vectors=vectors)
     return 0
 
 
@@ -180,6 +184,14 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--image-root", action="append", default=[], metavar="DIR",
                    help="a folder whose images a CSV/JSONL may name besides its own folder (repeatable); "
                         "without it, rows naming images elsewhere are refused")
+    v = p.add_argument_group("stored vectors (the embeddings you already hold become the training targets)")
+    v.add_argument("--vectors", metavar="FILE", help="an .npy (N x D) array with --vector-keys, or a .parquet file")
+    v.add_argument("--vector-keys", metavar="FILE", help="for an .npy: one key (sample key or image path) per row")
+    v.add_argument("--key-column", default="key", help="for a .parquet: the key column (default: key)")
+    v.add_argument("--vector-column", default="vector", help="for a .parquet: the vector column (default: vector)")
+    v.add_argument("--vector-model", metavar="ID", help="the id of the model that made the vectors (recorded)")
+    v.add_argument("--vector-dim", type=int, default=0, help="the width every vector must have "
+                                                              "(default: the most common width in the file)")
     p.set_defaults(func=cmd_pack)
 
     p = sub.add_parser("train", help="train the text tower of a recipe")

@@ -14,7 +14,9 @@ Reject reasons: ``unreadable_image``, ``missing_image``, ``image_too_large`` (th
 pixels than Pillow's ``MAX_IMAGE_PIXELS``), ``unsupported_pixels`` (32-bit integer or floating-point
 samples), ``missing_caption``, ``empty_caption``, ``caption_too_long``, ``not_utf8``, ``bad_labels``,
 ``duplicate_key``, and ``bad_row`` (a CSV/JSONL row that cannot be parsed, or whose image or caption
-is not text).
+is not text). With stored vectors (``vectors.py``), a row needs no image but a vector, and the vector
+reasons join these: ``missing_vector``, ``vector_wrong_width``, ``vector_not_finite``, ``vector_zero``,
+``duplicate_vector_key``, ``unmatched_vector``.
 
 Labels are stored as an object of strings (numbers and booleans are written as their JSON text,
 null values are dropped), so evaluation can compare label values without caring where they came from.
@@ -45,6 +47,7 @@ from ..fileio import write_text_atomic
 from ..labels import canonical_labels
 from .pixels import ImageTooLarge, UnsupportedPixels, open_image, to_rgb8
 from .sources import Candidate, Reject, decode_utf8, list_source
+from .vectors import StoredVectors, VectorSource, replace_stored_entries
 
 FORMAT_VERSION = 1
 # JPEG and PNG bytes are stored untouched (no generation loss); anything else becomes PNG
@@ -164,13 +167,15 @@ def _labels_of(candidate: Candidate) -> dict:
     return _normalise_labels(candidate.labels or {})
 
 
-def check_sample(candidate: Candidate, max_chars: int) -> _Sample:
-    """Read and validate one sample (cheap checks first); raises Reject."""
-    if candidate.problem:
+def check_sample(candidate: Candidate, max_chars: int, image_optional: bool = False) -> _Sample:
+    """Read and validate one sample (cheap checks first); raises Reject. ``image_optional``: a row
+    without an image is packed (its stored vector stands in for it)."""
+    textual = image_optional and candidate.image_path is None and (candidate.problem or ("",))[0] == "missing_image"
+    if candidate.problem and not textual:
         raise Reject(*candidate.problem)
     caption = _caption_of(candidate, max_chars)
     labels = _labels_of(candidate)
-    image, ext = _read_image(candidate.image_path)
+    image, ext = (b"", "") if textual else _read_image(candidate.image_path)
     return _Sample(candidate.key, image, ext, caption, canonical_labels(labels))
 
 
@@ -215,6 +220,7 @@ class _SplitWriter:
             self._open_next()
         members = {sample.ext: sample.image, "txt": sample.caption.encode("utf-8"),
                    "json": sample.labels_json.encode("utf-8")}
+        members.pop("", None)  # a caption-and-vector sample has no image member
         # one sample's members sit next to each other (webdataset groups consecutive names by key)
         for ext in sorted(members):
             info = tarfile.TarInfo(f"{sample.key}.{ext}")
@@ -243,7 +249,7 @@ class _Packed:
 
 
 def _write_samples(candidates: list[Candidate], stage: Path, *, val_fraction: float, shard_size: int,
-                   max_caption_chars: int, console: Console) -> _Packed:
+                   max_caption_chars: int, console: Console, vectors: StoredVectors | None = None) -> _Packed:
     packed = _Packed({split: _SplitWriter(stage, split, shard_size) for split in SPLITS})
     with Progress(TextColumn("packing"), BarColumn(), MofNCompleteColumn(), TimeRemainingColumn(),
                   console=console, transient=True) as progress:
@@ -254,7 +260,9 @@ def _write_samples(candidates: list[Candidate], stage: Path, *, val_fraction: fl
                 # a key is only taken by a sample that was packed; a rejected first copy frees it
                 if candidate.key in packed.keys:
                     raise Reject("duplicate_key", f"key {candidate.key!r} is already used by another sample")
-                sample = check_sample(candidate, max_caption_chars)
+                sample = check_sample(candidate, max_caption_chars, image_optional=vectors is not None)
+                if vectors is not None:
+                    vectors.check(sample.key)
             except Reject as rej:
                 packed.rejects.append({"source": candidate.source, "key": candidate.key,
                                        "reason": rej.reason, "detail": rej.detail})
@@ -263,8 +271,11 @@ def _write_samples(candidates: list[Candidate], stage: Path, *, val_fraction: fl
             packed.label_fields.update(json.loads(sample.labels_json))
             packed.writers[split_of(sample.key, val_fraction)].write(sample)
             packed.overall.add(sample)
+            if vectors is not None:
+                vectors.take(sample.key, split_of(sample.key, val_fraction))
     for writer in packed.writers.values():
         writer.finish()
+    packed.rejects += vectors.unmatched({c.key for c in candidates}) if vectors is not None else []
     return packed
 
 
@@ -317,6 +328,7 @@ def _commit(stage: Path, out: Path, shards: list[str]) -> None:
         if _SHARD_NAME.match(path.name) and path.name not in shards:
             path.unlink()
     os.replace(stage / REJECTED, out / REJECTED)
+    replace_stored_entries(stage, out)  # stored vectors: this pack's, or none
     (out / FAILED_PACK_REJECTED).unlink(missing_ok=True)  # it spoke of an attempt this pack replaces
     os.replace(stage / MANIFEST, out / MANIFEST)
     stage.rmdir()
@@ -361,15 +373,17 @@ def _check_options(val_fraction: float, shard_size: int, max_caption_chars: int)
 
 
 def _pack_into(stage: Path, source: Path, candidates: list[Candidate], out: Path, *, val_fraction: float,
-               shard_size: int, max_caption_chars: int, console: Console) -> dict:
+               shard_size: int, max_caption_chars: int, console: Console, vectors: StoredVectors | None) -> dict:
     """Shards, ``rejected.jsonl`` and ``manifest.json`` in STAGE; OUT is not touched (but for the report
     of a pack that packed nothing)."""
     try:
         packed = _write_samples(candidates, stage, val_fraction=val_fraction, shard_size=shard_size,
-                                max_caption_chars=max_caption_chars, console=console)
+                                max_caption_chars=max_caption_chars, console=console, vectors=vectors)
         if not packed.keys:
             _refuse_empty(source, out, candidates, packed.rejects)
         manifest = _manifest(source, candidates, packed, val_fraction)
+        if vectors is not None:
+            manifest["vectors"] = vectors.write_entries(stage, manifest["splits"])
         (stage / REJECTED).write_text(_rejects_text(packed.rejects), encoding="utf-8")
         (stage / MANIFEST).write_text(json.dumps(manifest, indent=2, ensure_ascii=False) + "\n", encoding="utf-8")
     except OSError as exc:  # a full disk, a folder that turned read-only
@@ -380,19 +394,21 @@ def _pack_into(stage: Path, source: Path, candidates: list[Candidate], out: Path
 
 def pack_source(source: str | Path, out: str | Path, *, val_fraction: float = 0.1, shard_size: int = 1000,
                 max_caption_chars: int = 1000, image_roots: list[str | Path] | tuple = (),
-                console: Console | None = None) -> dict:
+                console: Console | None = None, vectors: VectorSource | None = None) -> dict:
     """Validate SOURCE and put shards, ``rejected.jsonl`` and (last) ``manifest.json`` into OUT.
 
     ``image_roots``: folders besides a CSV/JSONL's own that its rows may name images in.
+    ``vectors``: stored vectors, matched to the samples by key (see ``vectors.py``).
     """
     console = console or Console()
     source, out = Path(source), Path(out)
     _check_options(val_fraction, shard_size, max_caption_chars)
     candidates = list_source(source, [Path(r) for r in image_roots])
+    stored = StoredVectors(vectors) if vectors is not None else None
     stage = _staging(out)
     try:
         manifest = _pack_into(stage, source, candidates, out, val_fraction=val_fraction, shard_size=shard_size,
-                              max_caption_chars=max_caption_chars, console=console)
+                              max_caption_chars=max_caption_chars, console=console, vectors=stored)
         _commit(stage, out, [name for split in SPLITS for name in manifest["splits"][split]["shards"]])
     finally:
         shutil.rmtree(stage, ignore_errors=True)  # gone after a commit; after a failure, the half pack

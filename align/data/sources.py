@@ -22,6 +22,7 @@ from pathlib import Path
 
 from ..errors import DataError
 
+TABLE_COLUMNS = ("image", "caption", "key")  # every other column of a table is a label
 IMAGE_SUFFIXES = (".jpg", ".jpeg", ".png", ".webp", ".bmp", ".tif", ".tiff")
 _TABLE_HINT = "name the header row image,caption[,label columns...] and give each image one row below it"
 
@@ -52,6 +53,15 @@ class Candidate:
 def sample_key(name: str) -> str:
     """Webdataset key of a path without its extension: no dots, slashes or spaces."""
     return re.sub(r"[^A-Za-z0-9_-]", "_", name)
+
+
+def explicit_key(text: str) -> str:
+    """The key a table's ``key`` column (or a stored-vectors keys file) names: an image suffix, if
+    any, is dropped, so a key may be written as the image's path or as the key itself."""
+    text = re.sub(r"^(\./|/)+", "", text.strip())
+    if Path(text).suffix.lower() in IMAGE_SUFFIXES:
+        text = Path(text).with_suffix("").as_posix()
+    return sample_key(text)
 
 
 def decode_utf8(data: bytes, what: str) -> str:
@@ -89,25 +99,29 @@ def _inside(path: Path, roots: list[Path]) -> bool:
 
 
 def _table_candidate(row: dict, base: Path, source: str, roots: list[Path]) -> Candidate:
-    """A CSV/JSONL row: ``image`` and ``caption`` plus any other fields as labels."""
+    """A CSV/JSONL row: ``image`` and ``caption`` plus any other fields as labels. A ``key`` column,
+    when present, names the sample (a row packed with stored vectors needs no image, but a key)."""
     image = row.get("image")
     image_name = image.strip() if isinstance(image, str) else ""
     key_name = re.sub(r"^(\./|/)+", "", Path(image_name).with_suffix("").as_posix()) if image_name else ""
-    candidate = Candidate(key=sample_key(key_name), source=source, image_path=None)
+    named = row.get("key")
+    key = explicit_key(named) if isinstance(named, str) and named.strip() else sample_key(key_name)
+    candidate = Candidate(key=key, source=source, image_path=None)
     if image is not None and not isinstance(image, str):
         candidate.problem = ("bad_row", f"'image' must be a path (text), got {type(image).__name__} {image!r}")
         return candidate
-    if not image_name:
+    caption = row.get("caption")
+    candidate.labels = {k: v for k, v in row.items() if k not in TABLE_COLUMNS}
+    if not image_name:  # kept with its caption: stored vectors can stand in for the image
+        candidate.caption = caption if isinstance(caption, str) else None
         candidate.problem = ("missing_image", "the row has no image path")
         return candidate
     path = Path(image_name)
     candidate.image_path = path if path.is_absolute() else base / path
     candidate.outside = not _inside(candidate.image_path, roots)
-    caption = row.get("caption")
     if caption is not None and not isinstance(caption, str):
         candidate.problem = ("bad_row", f"caption must be text, got {type(caption).__name__}")
     candidate.caption = caption
-    candidate.labels = {k: v for k, v in row.items() if k not in ("image", "caption")}
     return candidate
 
 
@@ -138,8 +152,9 @@ def _check_header(path: Path, fields: list[str]) -> None:
         # csv would keep only the last cell of a repeated column: a caption or label silently lost
         raise DataError(f"{path}'s header names column(s) {', '.join(map(repr, repeated))} more than once",
                         hint="give every column its own name; extra columns become labels")
-    if "image" not in fields or "caption" not in fields:
-        raise DataError(f"{path} has columns {fields}; it needs 'image' and 'caption'", hint=_TABLE_HINT)
+    if "caption" not in fields or ("image" not in fields and "key" not in fields):
+        raise DataError(f"{path} has columns {fields}; it needs 'image' (or, with stored vectors, 'key') and "
+                        "'caption'", hint=_TABLE_HINT)
 
 
 def _list_csv(path: Path, roots: list[Path]) -> list[Candidate]:
@@ -155,7 +170,7 @@ def _list_csv(path: Path, roots: list[Path]) -> list[Candidate]:
                 candidate = Candidate(key="", source=source, image_path=None,
                                       problem=("bad_row", "more cells than header columns"))
             else:
-                row = {k: v for k, v in row.items() if not (k not in ("image", "caption") and v in (None, ""))}
+                row = {k: v for k, v in row.items() if not (k not in TABLE_COLUMNS and v in (None, ""))}
                 candidate = _table_candidate(row, path.parent, source, roots)
             if _has_undecodable(list(row.keys()) + list(row.values())):
                 candidate.problem = ("not_utf8", "the row holds bytes that are not UTF-8")
