@@ -21,9 +21,9 @@ from PIL import Image
 
 from . import artifacts as A
 from .errors import AlignError, FingerprintMismatch
-from .recipe import VisionConfig
+from .recipe import PreprocessConfig, VisionConfig
 from .text import TextTower, text_kind
-from .vision import load_image_tower, tower_differences
+from .vision import TOWER_IDENTITY, load_image_tower, tower_differences
 
 def read_json(path: Path, what: str, hint: str) -> dict:
     if not path.is_file():
@@ -96,9 +96,18 @@ def load_adapter_encoder(folder: Path, base_model: str | Path | None = None):
 def vision_config_for(image_side: dict, weights: str | Path | None = None) -> VisionConfig:
     """The VisionConfig that rebuilds the tower image_side.json describes.
 
-    ``weights`` defaults to the file recorded at export when it still exists on this machine and is
-    not the offline package; otherwise the offline package.
+    timm: ``weights`` defaults to the file recorded at export when it still exists on this machine
+    and is not the offline package; otherwise the offline package. Other sources: ``weights`` names
+    the model file or folder (default: the one recorded at export).
     """
+    keys = image_side.get("recipe") or {"source": "timm"}  # exports before tower sources: timm
+    if keys["source"] == "stored":
+        raise AlignError(f"this export was trained against stored vectors of {image_side.get('model')!r}, with no "
+                         "image tower align can run", "embed images with that model yourself (image_side.json says "
+                         "how they were made) and compare them with embed_text's output")
+    if keys["source"] != "timm":
+        plain = {k: v for k, v in keys.items() if k != "preprocess"} | ({"model_path": str(weights)} if weights else {})
+        return VisionConfig(**plain, preprocess=PreprocessConfig(**keys.get("preprocess", {})))
     recorded = image_side.get("weights", {})
     if weights is None and recorded.get("source") == "file" and Path(recorded.get("path", "")).is_file():
         weights = recorded["path"]
@@ -114,11 +123,12 @@ def load_checked_tower(image_side: dict, weights: str | Path | None = None):
     differences = tower_differences(image_side, tower.fingerprint)
     if differences:
         recorded = image_side.get("weights", {})
+        origin = cfg.model_path if cfg.source != "timm" else cfg.weights or "the offline package"
         raise FingerprintMismatch(
-            f"the image tower loaded from {cfg.weights or 'the offline package'} is not the one this export "
+            f"the {cfg.source} image tower loaded from {origin} is not the one this export "
             f"was trained against ({'; '.join(differences)})",
-            f"pass the weights file the export names (weights=PATH / --weights PATH; it was "
-            f"{recorded.get('file', '?')}, sha256 of its tensors {image_side['weights_sha256'][:12]}…)")
+            f"pass the weights file or model the export names (weights=PATH / --weights PATH; it was "
+            f"{recorded.get('file') or recorded.get('folder', '?')}, weights sha256 {image_side['weights_sha256'][:12]}…)")
     return tower
 
 
@@ -169,6 +179,22 @@ class AlignedModel:
     def vision_config(self) -> VisionConfig:
         """The recipe section that rebuilds this export's frozen tower (for the feature cache)."""
         return vision_config_for(self.image_side, self._weights)
+
+    @property
+    def has_tower(self) -> bool:
+        """False for an export trained against stored vectors alone: it embeds text only."""
+        return (self.image_side.get("recipe") or {}).get("source") != "stored"
+
+    @property
+    def image_fingerprint(self) -> dict:
+        """The image side's identity: the (loaded, checked) tower's fingerprint, or the stored vectors'."""
+        if not self.has_tower:
+            return {key: self.image_side.get(key) for key in TOWER_IDENTITY}
+        return self.image_tower.fingerprint
+
+    @property
+    def tower_forward_passes(self) -> int:
+        return self._tower.forward_passes if self._tower is not None else 0
 
     @property
     def image_tower(self):
@@ -228,5 +254,6 @@ def load(export_dir: str | Path, *, weights: str | Path | None = None, image_tow
     """
     export_dir, info, image_side = read_export(export_dir)
     text, tokenizer, head = load_text_encoder(export_dir / A.EXPORT_TEXT_ENCODER)
-    tower = load_checked_tower(image_side, weights) if image_tower else None
+    tower_less = (image_side.get("recipe") or {}).get("source") == "stored"  # text only: nothing to check
+    tower = load_checked_tower(image_side, weights) if image_tower and not tower_less else None
     return AlignedModel(export_dir, text, tokenizer, head, image_side, info, weights, tower)

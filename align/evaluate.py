@@ -15,13 +15,12 @@ from rich.console import Console
 from . import artifacts as A
 from .data.shards import SplitTable, load_table
 from .errors import DataError
-from .features import FeatureSet, image_features
+from .features import FeatureSet, split_features
 from .fileio import write_json_atomic
 from .labels import label_group
 from .metrics import (class_text_embeddings, display_name, format_metrics_table, linear_probe_accuracy,
                       retrieval_metrics, zero_shot_accuracy)
 from .run import RunDir, shards_dir
-from .vision import shared_image_tower
 
 
 def _field_values(labels: list[dict], field: str) -> list[str | None]:
@@ -85,15 +84,16 @@ def evaluate_run(run_dir: str | Path, shards: str | Path | None = None, tag: str
     eval_dir = Path(shards) if shards else train_dir
     split = recipe.data.eval_split
 
-    # Frozen features for the evaluation images and, for the probe and class list, the training images.
-    tower = shared_image_tower(recipe.vision)
+    # Frozen features (the tower's, or stored vectors) for the evaluation images and, for the probe
+    # and class list, the training images.
     eval_table = load_table(eval_dir, split)
-    eval_feats = image_features(tower, eval_dir, split, recipe.vision, console)
+    eval_side = split_features(recipe.vision, eval_dir, split, console)
+    eval_feats = eval_side.features
     train_table = load_table(train_dir, recipe.data.train_split)
-    train_feats = image_features(tower, train_dir, recipe.data.train_split, recipe.vision, console)
+    train_feats = split_features(recipe.vision, train_dir, recipe.data.train_split, console).features
 
-    trained = run.load_trained(tower.feature_dim, checkpoint, recipe)
-    run.check_tower(trained.checkpoint, tower.fingerprint)
+    trained = run.load_trained(eval_side.fingerprint["feature_dim"], checkpoint, recipe)
+    run.check_tower(trained.checkpoint, eval_side.fingerprint)
 
     # Retrieval both ways; a hit is any image with the same labels (or the pair itself without labels).
     keep = _rows_with_features(eval_table, eval_feats)

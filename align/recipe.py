@@ -16,33 +16,12 @@ from pathlib import Path
 from typing import Any, get_args, get_origin, get_type_hints
 
 from .errors import RecipeError
+from .recipe_vision import PreprocessConfig, VisionConfig, validate_vision  # noqa: F401 - PreprocessConfig re-exported
+from .recipe_vision import doc_field as _f
 
 
 # Larger inputs buy nothing a tower was trained for, and cost memory with the square of the side.
 MAX_IMAGE_SIZE = 1024
-
-
-def _f(default, doc: str, choices: tuple | None = None):
-    """A recipe field with its documentation (and allowed values) attached."""
-    meta = {"doc": doc, "choices": choices}
-    if isinstance(default, (list, dict)):
-        return field(default_factory=lambda d=default: type(d)(d), metadata=meta)
-    return field(default=default, metadata=meta)
-
-
-@dataclass
-class VisionConfig:
-    model: str = _f("efficientnet_lite0", "timm architecture name of the frozen image tower")
-    weights: str = _f("", "local weights file (safetensors, or a pickle loaded with weights_only); "
-                          "empty = the offline EfficientNet-Lite0 package")
-    image_size: int = _f(0, "input side in pixels; 0 = the tower's native size from its pretrained config")
-    channels_last: bool = _f(True, "run the tower in channels_last memory format (about 2x faster on CPU)")
-    batch_size: int = _f(64, "images per forward pass while embedding")
-    workers: int = _f(0, "DataLoader worker processes decoding images while embedding (0 = main process)")
-    views: int = _f(1, "augmented views cached per training image (random resized crop + flip); "
-                       "one is sampled per epoch")
-    feature_cache: str = _f("", "folder of the frozen-feature cache (one sub-folder per fingerprint); "
-                                "empty = features/ inside the packed shards folder")
 
 
 @dataclass
@@ -261,6 +240,7 @@ def _validate(recipe: Recipe) -> None:
     if t.kind == "scratch" and not 0 <= sc.dropout < 1:
         raise RecipeError(f"text.scratch.dropout must be in [0, 1), got {sc.dropout}", "for example 0.1")
     _validate_loss(lo)
+    validate_vision(v)
     if v.image_size and not 32 <= v.image_size <= MAX_IMAGE_SIZE:
         raise RecipeError(f"vision.image_size must be 0 (native) or between 32 and {MAX_IMAGE_SIZE}, got {v.image_size}",
                           "the tower's native size (0) is what its weights were trained at; 160 or 224 are usual")

@@ -42,7 +42,8 @@ from ..fileio import check_output_dir, open_permissions, swap_dir_in, write_json
 from ..recipe import Recipe
 from ..run import RunDir
 from ..text import TextKind, TextTower, text_kind
-from ..vision import FrozenImageTower, shared_image_tower
+from ..features import trained_image_side
+from ..vision import FrozenImageTower
 from .card import build_card, image_side_record, render_card
 from .checks import (TOLERANCE, check_onnx, check_reloaded, check_sentence_model, enforce, max_abs_difference,
                      onnx_runner)
@@ -62,7 +63,8 @@ class _Trained:
     kind: TextKind
     loss_fn: torch.nn.Module
     checkpoint: Path
-    image_tower: FrozenImageTower
+    image_tower: FrozenImageTower | None  # None: trained against stored vectors alone
+    image_side: dict  # the fingerprint trained against (the tower's, with stored vectors when used)
 
 
 def export_run(run_dir: str | Path, out: str | Path, *, checkpoint: str | Path | None = None, onnx: bool = True,
@@ -106,17 +108,18 @@ def export_run(run_dir: str | Path, out: str | Path, *, checkpoint: str | Path |
 
 def _load_trained(run: RunDir, recipe: Recipe, checkpoint: str | Path | None) -> _Trained:
     """The run as trained, against the tower it was trained with (refused if that changed)."""
-    image_tower = shared_image_tower(recipe.vision)  # a service job reuses the tower it trained with
-    loaded = run.load_trained(image_tower.feature_dim, checkpoint, recipe)
-    run.check_tower(loaded.checkpoint, image_tower.fingerprint)
+    recorded = run.progress(run.checkpoint(checkpoint)).get("tower") or {}
+    image_tower, image_side = trained_image_side(recipe.vision, recorded)  # None: stored vectors alone
+    loaded = run.load_trained(image_side["feature_dim"], checkpoint, recipe)
+    run.check_tower(loaded.checkpoint, image_side)
     return _Trained(run, recipe, loaded.tower, text_kind(loaded.tower.kind), loaded.loss_fn, loaded.checkpoint,
-                    image_tower)
+                    image_tower, image_side)
 
 
 def _write_and_check_text(trained: _Trained, temp: Path, onnx: bool, phase, console: Console) -> dict:
     """Adapter (kinds that train one), merged encoder and ONNX, each checked against the trained tower."""
     tower, kind = trained.tower, trained.kind
-    head = text_head(tower, trained.image_tower.feature_dim)
+    head = text_head(tower, trained.image_side["feature_dim"])
     phase()
     if kind.writes_adapter:
         write_adapter(tower, kind, temp / A.EXPORT_ADAPTER, head, trained.recipe.text)
@@ -140,13 +143,13 @@ def _write_and_check_text(trained: _Trained, temp: Path, onnx: bool, phase, cons
 
 def _write_records(trained: _Trained, temp: Path, checks: dict, onnx: bool) -> dict:
     """image_side.json and the card; returns export.json's content (written last, by the caller)."""
-    write_json_atomic(temp / A.IMAGE_SIDE, image_side_record(trained.image_tower))
+    write_json_atomic(temp / A.IMAGE_SIDE, image_side_record(trained.image_tower, trained.image_side))
     card = build_card(trained.recipe, trained.run.path, trained.checkpoint,
                       trained.run.progress(trained.checkpoint).get("step"), trained.tower, trained.kind,
-                      trained.loss_fn, trained.image_tower, checks)
+                      trained.loss_fn, trained.image_side, checks)
     write_json_atomic(temp / A.CARD_JSON, card)
     write_text_atomic(temp / A.CARD_MD, render_card(card))
-    dim = trained.image_tower.feature_dim
+    dim = trained.image_side["feature_dim"]
     adapter = A.EXPORT_ADAPTER if trained.kind.writes_adapter else None
     return {"format_version": FORMAT_VERSION, "align_version": __version__, "kind": trained.tower.kind,
             "embedding_dim": dim, "max_length": trained.tower.max_length,
@@ -158,4 +161,4 @@ def _write_records(trained: _Trained, temp: Path, checks: dict, onnx: bool) -> d
                         "output": {"embedding": ["batch", dim]}, "dtype": "int64 in, float32 out",
                         "opset": ONNX_OPSET} if onnx else None,
             "tolerance": TOLERANCE, "checks": checks, "run_dir": str(trained.run.path.resolve()),
-            "checkpoint": trained.checkpoint.name, "image_fingerprint": trained.image_tower.fingerprint}
+            "checkpoint": trained.checkpoint.name, "image_fingerprint": trained.image_side}

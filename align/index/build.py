@@ -139,8 +139,8 @@ def build_index(export_dir: str | Path, source: str | Path, out: str | Path, *, 
     info = {"format_version": FORMAT_VERSION, "export_dir": str(export_dir.resolve()),
             "export": export_identity(export_dir), "source": str(source.resolve()), "count": len(row_keys),
             "dim": int(rows.shape[1]), "dtype": "float32", "normalised": "l2",
-            "image_fingerprint": model.image_tower.fingerprint, "skipped": skipped, **how,
-            "tower_forward_passes": model.image_tower.forward_passes, "format": fmt,
+            "image_fingerprint": model.image_fingerprint, "skipped": skipped, **how,
+            "tower_forward_passes": model.tower_forward_passes, "format": fmt,
             "label_fields": label_table.fields, "approximate": None}
 
     out.parent.mkdir(parents=True, exist_ok=True)

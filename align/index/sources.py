@@ -65,16 +65,17 @@ def embed_folder(model: AlignedModel, source: Path, console: Console, batch_size
 
 
 def embed_packed(model: AlignedModel, source: Path, console: Console):
-    """Every split of a packed folder, through the feature cache (no forward pass when it is warm)."""
+    """Every split of a packed folder, through the feature cache (no forward pass when it is warm);
+    an export trained against stored vectors alone takes the folder's packed stored vectors."""
     from ..data.shards import read_manifest
-    from ..features import image_features
+    from ..features import gallery_stored_features, image_features
 
-    cfg = model.vision_config
     keys, chunks, skipped = [], [], []
     for split, info in read_manifest(source)["splits"].items():
         if not info["samples"]:
             continue
-        feats = image_features(model.image_tower, source, split, cfg, console)
+        feats = (image_features(model.image_tower, source, split, model.vision_config, console) if model.has_tower
+                 else gallery_stored_features(model.image_side, source, split))
         keys += feats.keys
         skipped += feats.skipped
         chunks.append(feats.embeddings.float().numpy())

@@ -12,12 +12,12 @@ from rich.console import Console
 
 from ..data.shards import load_table
 from ..errors import AlignError
-from ..features import image_features
+from ..features import split_features
 from ..loss import positive_ids
 from ..recipe import Recipe
 from ..run import shards_dir
 from ..seeding import VIEW_STREAM, epoch_generator
-from ..vision import FrozenImageTower, shared_image_tower
+from ..vision import FrozenImageTower
 from .sampler import EpochSampler
 
 
@@ -42,9 +42,9 @@ def prepare_training_data(recipe: Recipe, console: Console) -> TrainingData:
     """Embed the training images once with the frozen tower and line them up with their captions."""
     data_dir = shards_dir(recipe)
     table = load_table(data_dir, recipe.data.train_split)
-    tower = shared_image_tower(recipe.vision)  # evaluation in the same process reuses it
-    feats = image_features(tower, data_dir, recipe.data.train_split, recipe.vision, console,
-                           views=recipe.vision.views)
+    # the tower's cached features or stored vectors; evaluation in the same process reuses the tower
+    side = split_features(recipe.vision, data_dir, recipe.data.train_split, console, views=recipe.vision.views)
+    feats, tower = side.features, side.tower
     keep = set(feats.keys)
     rows = [i for i, k in enumerate(table.keys) if k in keep]  # images that failed to decode drop out
     keys = [table.keys[i] for i in rows]
@@ -52,7 +52,7 @@ def prepare_training_data(recipe: Recipe, console: Console) -> TrainingData:
     labels = [table.labels[i] for i in rows]
     caption_ids, label_ids = positive_ids(captions, labels, recipe.loss.positives)
     return TrainingData(keys=keys, captions=captions, labels=labels, image_features=feats.rows_for(keys),
-                        caption_ids=caption_ids, label_ids=label_ids, tower_fingerprint=tower.fingerprint,
+                        caption_ids=caption_ids, label_ids=label_ids, tower_fingerprint=side.fingerprint,
                         image_views=feats.view_rows_for(keys) if feats.views > 1 else None, image_tower=tower)
 
 
