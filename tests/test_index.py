@@ -1,14 +1,18 @@
 """align index / query on the demo gallery, exact search backends, and adopting stored embeddings.
 
 References outside align: the top-k is checked against a full stable numpy argsort written here and
-against faiss' IndexFlatIP; the demo check reads the ground truth from the labels pack wrote; the
-"other tower" embeddings come from timm directly. A small demo-like run (LoRA on the offline
+against faiss' IndexFlatIP; the demo check reads the ground truth from the labels pack wrote (filtered
+queries too: mask, then a stable argsort); the "other tower" embeddings come from timm directly. A small demo-like run (LoRA on the offline
 MiniLM, 96 px tiles, 60 steps) is trained once for the module.
 """
 from __future__ import annotations
 
 import json
+import math
+import os
 import shutil
+import subprocess
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -199,3 +203,43 @@ def test_query_refuses_an_index_of_another_tower(demo, tmp_path, capsys):
     with pytest.raises(FingerprintMismatch):
         from align.index import GallerySearch
         GallerySearch(copy)
+
+
+@pytest.mark.slow
+def test_filtered_query_on_the_demo_gallery(demo, capsys):
+    from align.api import load
+
+    labels = _labels(demo / "shards")
+    index = load_index(demo / "index")
+    glazes = list(GLAZES)
+    glaze, patterns = glazes[0], list(PATTERNS[:2])
+    keep = np.array([labels[k][0] == glaze and labels[k][1] in patterns for k in index.keys])
+    text = caption_for(glazes[1], patterns[0], np.random.default_rng(5))  # another glaze: the filter decides
+    query = load(demo / "export", image_tower=False).embed_text([text])  # (1, D)
+    rows = np.flatnonzero(keep)
+    scores = query.astype(np.float64) @ np.asarray(index.embeddings)[rows].astype(np.float64).T  # (1, M)
+    expected = [index.keys[r] for r in rows[np.argsort(-scores[0], kind="stable")[:10]]]
+    capsys.readouterr()
+    where = ["--where", f"glaze={glaze}", "--where", f"pattern={patterns[0]}", "--where", f"pattern={patterns[1]}"]
+    assert cli_main(["query", str(demo / "index"), text, "-k", "10", "--json", *where]) == 0
+    answer = json.loads(capsys.readouterr().out)
+    assert answer["filter"]["matching"] == int(keep.sum()) > 0
+    assert [r["key"] for r in answer["queries"][0]["results"]] == expected and len(expected) == min(10, keep.sum())
+    assert all(labels[r["key"]][0] == glaze for r in answer["queries"][0]["results"])
+
+
+def test_bench_index_quick_mode_reports_its_figures(tmp_path):
+    """tools/bench_index.py runs from a clean folder in its quick mode; its figures are finite and positive
+    (latency targets are not asserted: they depend on the machine and its load)."""
+    repo = Path(__file__).resolve().parent.parent
+    done = subprocess.run([sys.executable, str(repo / "tools" / "bench_index.py"), "--quick", "--json", "--threads", "1",
+                           "--out", str(tmp_path)], env=dict(os.environ, PYTHONPATH=str(repo)),
+                          capture_output=True, text=True, timeout=600)
+    assert done.returncode == 0, done.stderr[-3000:]
+    result = json.loads(done.stdout.strip().splitlines()[-1])
+    for figures in result["latency"].values():
+        assert all(math.isfinite(v) and v > 0 for v in figures.values())
+    assert set(result["latency"]) == {"exact numpy", "exact faiss flat", "approximate"}
+    assert 0.9 <= result["recall_at_10"] <= 1 and result["build"]["build_seconds"] > 0
+    assert json.loads((tmp_path / "index_bench.json").read_text()) == result
+    assert (tmp_path / "index_bench.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # the PNG signature (PNG spec, 5.2)
