@@ -22,6 +22,19 @@ RNG_STATE = "random_streams.pt"  # torch, numpy and Python RNG states
 RESUMES_LOG = "resumes.jsonl"  # one line per resume that changed a free recipe field
 TOKENIZER_DIR = "tokenizer"
 NEW_TOKENS = "new_tokens.json"  # inside TOKENIZER_DIR: the domain terms added to the tokenizer
+EVALUATION_DETAILS = "evaluation.json"  # per evaluation set: intervals, confusion matrices, gallery (for the report)
+REPORT = "report.html"  # self-contained: styles and plots inline
+PLOTS = "plots"  # the report's plots as PNG files
+PLOT_TRAINING = "training.png"  # loss, temperature and learning rate against step
+PLOT_VALIDATION = "validation.png"  # validation recall against step
+PLOT_RECALL = "recall.png"  # recall@K both ways with 95% intervals
+PLOT_FIELDS = "zero-shot.png"  # zero-shot beside the linear probe, per label field
+PLOT_CONFUSION = "confusion-{field}.png"  # one per label field
+
+# runs side by side (align compare)
+COMPARE_TABLE = "compare.md"
+COMPARE_JSON = "compare.json"
+COMPARE_PLOT = "compare.png"
 
 # feature cache
 FEATURE_ROOT = "features"

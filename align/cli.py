@@ -51,6 +51,18 @@ def cmd_evaluate(args) -> int:
     return 0
 
 
+def cmd_report(args) -> int:
+    from .report import write_report
+    write_report(args.run_dir, console=console)
+    return 0
+
+
+def cmd_compare(args) -> int:
+    from .compare import compare_runs
+    compare_runs(args.run_dirs, args.out, metric=args.metric, console=console)
+    return 0
+
+
 def cmd_features(args) -> int:
     from .features import build_recipe_features
     for feats in build_recipe_features(_recipe(args), console=console):
@@ -206,6 +218,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--tag", help="prefix for the metric keys of this evaluation set, e.g. heldout")
     p.set_defaults(func=cmd_evaluate)
 
+    p = sub.add_parser("report", help="rebuild a run's report.html and plots from its folder (no model is loaded)")
+    p.add_argument("run_dir", help="a folder written by align train (evaluated for the full report)")
+    p.set_defaults(func=cmd_report)
+
+    p = sub.add_parser("compare", help="runs side by side: differing recipe fields, metrics with intervals, a plot")
+    p.add_argument("run_dirs", nargs="+", metavar="RUN", help="two or more run folders; the first is the baseline")
+    p.add_argument("--out", default="compare", help="folder for compare.md, compare.json and compare.png")
+    p.add_argument("--metric", default="mean_recall", help="validation metric drawn and ranked (without val/)")
+    p.set_defaults(func=cmd_compare)
+
     p = sub.add_parser("features", help="cache the frozen image features a recipe needs, ahead of training")
     _add_recipe_args(p)
     p.set_defaults(func=cmd_features)
@@ -230,7 +252,8 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("export", help="adapter, merged encoder, ONNX, image-side contract and card of a run")
     p.add_argument("run_dir", help="a folder written by align train")
     p.add_argument("--out", required=True, help="export folder (replaced only once the new export is complete)")
-    p.add_argument("--checkpoint", help="a checkpoint folder of the run (default: the newest)")
+    p.add_argument("--checkpoint", help="a checkpoint folder of the run (default: the best validation step's "
+                   "under train.keep_best, else the newest)")
     p.add_argument("--no-onnx", action="store_true", help="skip text_encoder.onnx")
     p.set_defaults(func=cmd_export)
 

@@ -2,7 +2,8 @@
 
 Draw the catalogue (some glaze x pattern pairs held out of training entirely) -> pack it ->
 train the demo recipe -> evaluate on held-in validation pairs and on the held-out pairs -> print a
-summary. The drawn images and shards are reused when already there; the run is trained afresh.
+summary (recall with its 95% bootstrap interval) and where the run's report is. The drawn images and
+shards are reused when already there; the run is trained afresh.
 """
 from __future__ import annotations
 
@@ -19,6 +20,7 @@ from .data.demo import HELDOUT_PAIRS, write_catalogue
 from .data.pack import pack_source
 from .evaluate import evaluate_run
 from .recipe import load_recipe
+from .report import read_details
 from .training import train
 from .text.vocab import shards_vocab_report
 
@@ -62,6 +64,11 @@ def run_demo(out: Path, data_dir: Path | None = None, recipe_path: str | None = 
     held_in = evaluate_run(out, console=console)
     held_out = evaluate_run(out, shards=heldout, tag="heldout", console=console)
     wall = time.perf_counter() - started
+    details = read_details(out)
+
+    def with_interval(tag: str, key: str) -> str:
+        cell = details.get(tag, {}).get("recall", {}).get(key)
+        return f"{cell['value']:.3f} [{cell['low']:.3f}, {cell['high']:.3f}]" if cell else "—"
 
     table = Table(title="align demo: tile catalogue", show_header=True)
     table.add_column("measure")
@@ -69,11 +76,11 @@ def run_demo(out: Path, data_dir: Path | None = None, recipe_path: str | None = 
     rows = [
         ("training pairs / steps", f"{summary['train_pairs']} / {summary['steps']}"),
         ("training speed", f"{summary['pairs_per_s']:.0f} pairs/s"),
-        ("held-in val: text→image R@1", f"{held_in['text_to_image_recall@1']:.3f}"),
-        ("held-in val: text→image R@5", f"{held_in['text_to_image_recall@5']:.3f}"),
-        ("held-in val: image→text R@1", f"{held_in['image_to_text_recall@1']:.3f}"),
-        (f"held-out pairs ({len(HELDOUT_PAIRS)} never trained on): text→image R@1",
-         f"{held_out['heldout/text_to_image_recall@1']:.3f}"),
+        ("held-in val: text→image R@1 [95%]", with_interval("", "text_to_image_recall@1")),
+        ("held-in val: text→image R@5 [95%]", with_interval("", "text_to_image_recall@5")),
+        ("held-in val: image→text R@1 [95%]", with_interval("", "image_to_text_recall@1")),
+        (f"held-out pairs ({len(HELDOUT_PAIRS)} never trained on): text→image R@1 [95%]",
+         with_interval("heldout", "text_to_image_recall@1")),
     ]
     for field in ("glaze", "pattern"):
         zs, probe = held_in.get(f"zero_shot_accuracy/{field}"), held_in.get(f"linear_probe_accuracy/{field}")
@@ -90,4 +97,5 @@ def run_demo(out: Path, data_dir: Path | None = None, recipe_path: str | None = 
                     + (f" (this run extends its tokenizer: text.new_tokens = {recipe.text.new_tokens!r})"
                        if recipe.text.new_tokens else "; `align vocab` has the terms, text.new_tokens = \"auto\" adds them"))
     console.print(f"run folder: {out}  (metrics: {out / A.METRICS})")
+    console.print(f"report: {out / A.REPORT}  (open it in a browser; `align report {out}` rebuilds it)")
     return {"held_in": held_in, "held_out": held_out, "wall_s": wall, "train": summary, "vocab": vocab}

@@ -1,5 +1,10 @@
 """Evaluate a run: retrieval both ways, zero-shot per label field, and the linear-probe ceiling.
 
+Beside ``metrics.json`` it keeps the details a person looks at (recall with bootstrap intervals,
+each field's confusion matrix, retrieval examples) in ``evaluation.json`` and writes the report.
+With no checkpoint named it takes the run's default (the best validation step's under
+``train.keep_best``, else the newest) and says which.
+
 The linear probe is trained on the same frozen image features the text side was aligned to, so it
 is the ceiling zero-shot classification is chasing: the closer the two, the better the text tower
 has learned to name what the image tower already sees.
@@ -19,7 +24,9 @@ from .features import FeatureSet, split_features
 from .fileio import write_json_atomic
 from .labels import label_group
 from .metrics import (class_text_embeddings, display_name, format_metrics_table, linear_probe_accuracy,
-                      retrieval_metrics, zero_shot_accuracy)
+                      recall_metrics_from_ranks, retrieval_ranks, zero_shot_accuracy, zero_shot_predictions)
+from .report import write_details, write_report
+from .report.details import bootstrap_note, field_detail, recall_with_intervals, retrieval_examples
 from .run import RunDir, shards_dir
 
 
@@ -34,9 +41,11 @@ def _rows_with_features(table: SplitTable, feats: FeatureSet) -> list[int]:
 
 
 def _zero_shot_and_probe(recipe, embed, labels: list[dict], image_emb: np.ndarray, train_labels: list[dict],
-                         train_emb: np.ndarray) -> dict:
-    """Zero-shot per label field (prompt ensembling) beside the linear probe on the same features."""
+                         train_emb: np.ndarray) -> tuple[dict, dict]:
+    """Zero-shot per label field (prompt ensembling) beside the linear probe on the same features.
+    Returns (metrics, per field: its classes, confusion matrix and per-class recall)."""
     metrics: dict = {}
+    details: dict = {}
     for field in sorted({f for lab in labels for f in lab}):
         eval_values = _field_values(labels, field)
         train_values = _field_values(train_labels, field)
@@ -47,18 +56,21 @@ def _zero_shot_and_probe(recipe, embed, labels: list[dict], image_emb: np.ndarra
         templates = recipe.eval.field_prompts.get(field, recipe.eval.prompts)
         class_emb = class_text_embeddings(embed, [display_name(c) for c in classes], templates)
         have = [i for i, v in enumerate(eval_values) if v is not None]
-        metrics[f"zero_shot_accuracy/{field}"] = zero_shot_accuracy(
-            image_emb[have], class_emb, [index[eval_values[i]] for i in have])
+        true = [index[eval_values[i]] for i in have]
+        metrics[f"zero_shot_accuracy/{field}"] = zero_shot_accuracy(image_emb[have], class_emb, true)
         train_have = [i for i, v in enumerate(train_values) if v is not None]
         if len({train_values[i] for i in train_have}) >= 2:
             metrics[f"linear_probe_accuracy/{field}"] = linear_probe_accuracy(
                 train_emb[train_have], [train_values[i] for i in train_have],
                 image_emb[have], [eval_values[i] for i in have],
                 C=recipe.eval.probe_c, max_iter=recipe.eval.probe_max_iter, seed=recipe.train.seed)
-    return metrics
+        details[field] = field_detail(classes, true, zero_shot_predictions(image_emb[have], class_emb),
+                                      metrics[f"zero_shot_accuracy/{field}"],
+                                      metrics.get(f"linear_probe_accuracy/{field}"))
+    return metrics, details
 
 
-def _write_metrics(run: RunDir, prefixed: dict, tag: str | None, checkpoint: Path) -> None:
+def _write_metrics(run: RunDir, prefixed: dict, tag: str | None, checkpoint: Path, choice: str) -> None:
     """Merge into metrics.json: a fresh default evaluation replaces the unprefixed keys, keeps tagged sets."""
     path = run.path / A.METRICS
     existing = json.loads(path.read_text(encoding="utf-8")) if path.is_file() else {}
@@ -67,12 +79,15 @@ def _write_metrics(run: RunDir, prefixed: dict, tag: str | None, checkpoint: Pat
                     ("zero_shot_accuracy", "linear_probe_accuracy")}
     existing.update(prefixed)
     existing["checkpoint"] = checkpoint.name
+    existing["checkpoint_choice"] = choice
     write_json_atomic(path, existing)
 
 
 def evaluate_run(run_dir: str | Path, shards: str | Path | None = None, tag: str | None = None,
-                 console: Console | None = None, write: bool = True, checkpoint: str | Path | None = None) -> dict:
-    """Score the newest (or given) checkpoint of ``run_dir`` on the eval split; write ``metrics.json``.
+                 console: Console | None = None, write: bool = True, checkpoint: str | Path | None = None,
+                 report: bool = True) -> dict:
+    """Score the default (or given) checkpoint of ``run_dir`` on the eval split; write ``metrics.json``,
+    ``evaluation.json`` and, with ``report``, the report.
 
     ``shards`` evaluates on another packed folder (its eval split); ``tag`` prefixes the keys
     (``tag/...``) so several evaluation sets share one metrics.json.
@@ -94,6 +109,8 @@ def evaluate_run(run_dir: str | Path, shards: str | Path | None = None, tag: str
 
     trained = run.load_trained(eval_side.fingerprint["feature_dim"], checkpoint, recipe)
     run.check_tower(trained.checkpoint, eval_side.fingerprint)
+    choice = run.describe(trained.checkpoint)
+    console.print(f"evaluating {choice}")
 
     # Retrieval both ways; a hit is any image with the same labels (or the pair itself without labels).
     keep = _rows_with_features(eval_table, eval_feats)
@@ -104,11 +121,12 @@ def evaluate_run(run_dir: str | Path, shards: str | Path | None = None, tag: str
     groups = [label_group(lab) for lab in labels]  # None: an unlabelled image matches only its pair
     train_labels = [train_table.labels[i] for i in _rows_with_features(train_table, train_feats)]
     try:  # the metrics are pure functions: their plain errors become a message with a hint here
-        metrics: dict = retrieval_metrics(text_emb, image_emb, None,
-                                          groups if any(g is not None for g in groups) else None,
-                                          ks=recipe.eval.recall_ks)
-        metrics |= _zero_shot_and_probe(recipe, lambda texts: trained.tower.embed(texts).numpy(), labels,
-                                        image_emb, train_labels, train_feats.embeddings.numpy())
+        ranks = retrieval_ranks(text_emb, image_emb, None, groups if any(g is not None for g in groups) else None)
+        metrics: dict = recall_metrics_from_ranks(ranks, recipe.eval.recall_ks)
+        field_metrics, fields = _zero_shot_and_probe(recipe, lambda texts: trained.tower.embed(texts).numpy(),
+                                                     labels, image_emb, train_labels, train_feats.embeddings.numpy())
+        metrics |= field_metrics
+        recall = recall_with_intervals(ranks, recipe.eval.recall_ks)
     except ValueError as exc:
         raise DataError(f"cannot evaluate {run.path} ({trained.checkpoint.name}) on {eval_dir} [{split}]: {exc}",
                         "check that the split has decodable images with captions, and that the run's weights "
@@ -118,6 +136,14 @@ def evaluate_run(run_dir: str | Path, shards: str | Path | None = None, tag: str
 
     prefixed = {f"{tag}/{k}": v for k, v in metrics.items()} if tag else dict(metrics)
     if write:
-        _write_metrics(run, prefixed, tag, trained.checkpoint)
+        _write_metrics(run, prefixed, tag, trained.checkpoint, choice)
+        write_details(run.path, tag, {
+            "checkpoint": trained.checkpoint.name, "checkpoint_choice": choice, "split": split,
+            "shards": str(Path(eval_dir).resolve()), "pairs": len(captions), "bootstrap": bootstrap_note(),
+            "recall": recall, "fields": fields,
+            "examples": retrieval_examples(text_emb, image_emb, groups, captions, [eval_table.keys[i] for i in keep],
+                                           labels, ranks["text_to_image"])})
     console.print(format_metrics_table(metrics, title=f"{run.path.name}: {tag or split} ({len(captions)} pairs)"))
+    if write and report:
+        write_report(run.path, console)
     return prefixed

@@ -1,4 +1,5 @@
-"""Metric functions over embeddings: retrieval recall@K, zero-shot accuracy, linear-probe accuracy.
+"""Metric functions over embeddings: retrieval recall@K, zero-shot accuracy, linear-probe accuracy,
+bootstrap intervals of recall, confusion matrices.
 
 Pure functions on numpy arrays; nothing here loads a model. The evaluator embeds captions and
 images, then hands the arrays to these functions. Bad input raises a plain ``ValueError``; the
@@ -165,14 +166,13 @@ def _blocked_ranks(queries: np.ndarray, gallery: np.ndarray,
     return ranks
 
 
-def retrieval_results(text_emb: np.ndarray, image_emb: np.ndarray, pair_ids: Sequence[int] | None,
-                      label_groups: Sequence[Hashable | None] | None = None, ks: Sequence[int] = (1, 5, 10),
-                      query_block: int = DEFAULT_QUERY_BLOCK) -> dict[str, RecallResult]:
-    """Recall both ways with skip counts; keys "text_to_image" and "image_to_text".
+def retrieval_ranks(text_emb: np.ndarray, image_emb: np.ndarray, pair_ids: Sequence[int] | None,
+                    label_groups: Sequence[Hashable | None] | None = None,
+                    query_block: int = DEFAULT_QUERY_BLOCK) -> dict[str, np.ndarray]:
+    """First-hit ranks both ways (-1 = no hit); keys "text_to_image" (N,) and "image_to_text" (M,).
 
     See ``retrieval_metrics`` for the arguments.
     """
-    ks = _check_ks(ks)
     text = _as_embeddings(text_emb, "text embeddings")                            # (N, D)
     image = _as_embeddings(image_emb, "image embeddings")                         # (M, D)
     n_text, n_image = text.shape[0], image.shape[0]
@@ -211,10 +211,26 @@ def retrieval_results(text_emb: np.ndarray, image_emb: np.ndarray, pair_ids: Seq
         codes = image_codes[start:stop, None]
         return own | ((codes == caption_codes[None, :]) & (codes >= 0))
 
-    return {
-        "text_to_image": recall_from_ranks(_blocked_ranks(text, image, text_to_image_hits, block), ks),
-        "image_to_text": recall_from_ranks(_blocked_ranks(image, text, image_to_text_hits, block), ks),
-    }
+    return {"text_to_image": _blocked_ranks(text, image, text_to_image_hits, block),
+            "image_to_text": _blocked_ranks(image, text, image_to_text_hits, block)}
+
+
+def retrieval_results(text_emb: np.ndarray, image_emb: np.ndarray, pair_ids: Sequence[int] | None,
+                      label_groups: Sequence[Hashable | None] | None = None, ks: Sequence[int] = (1, 5, 10),
+                      query_block: int = DEFAULT_QUERY_BLOCK) -> dict[str, RecallResult]:
+    """Recall both ways with skip counts; keys "text_to_image" and "image_to_text".
+
+    See ``retrieval_metrics`` for the arguments.
+    """
+    ks = _check_ks(ks)
+    ranks = retrieval_ranks(text_emb, image_emb, pair_ids, label_groups, query_block)
+    return {direction: recall_from_ranks(r, ks) for direction, r in ranks.items()}
+
+
+def recall_metrics_from_ranks(ranks: Mapping[str, np.ndarray], ks: Sequence[int]) -> dict[str, float]:
+    """``{direction}_recall@{k}`` for both directions of ``retrieval_ranks``' answer."""
+    return {f"{direction}_recall@{k}": value for direction in ("text_to_image", "image_to_text")
+            for k, value in recall_from_ranks(ranks[direction], ks).recall.items()}
 
 
 def retrieval_metrics(text_emb: np.ndarray, image_emb: np.ndarray, pair_ids: Sequence[int] | None,
@@ -232,12 +248,8 @@ def retrieval_metrics(text_emb: np.ndarray, image_emb: np.ndarray, pair_ids: Seq
     Scores are computed ``query_block`` queries at a time, so memory is (block, gallery) float32.
     Returns keys ``text_to_image_recall@{k}`` and ``image_to_text_recall@{k}`` for k in ``ks``.
     """
-    results = retrieval_results(text_emb, image_emb, pair_ids, label_groups, ks, query_block)
-    metrics: dict[str, float] = {}
-    for direction in ("text_to_image", "image_to_text"):
-        for k, value in results[direction].recall.items():
-            metrics[f"{direction}_recall@{k}"] = value
-    return metrics
+    ks = _check_ks(ks)
+    return recall_metrics_from_ranks(retrieval_ranks(text_emb, image_emb, pair_ids, label_groups, query_block), ks)
 
 
 # --------------------------------------------------------------------------------------------
@@ -325,6 +337,56 @@ def linear_probe_accuracy(train_x: np.ndarray, train_y: Sequence, test_x: np.nda
     probe.fit(scaler.transform(train_x), train_y)
     predicted = probe.predict(scaler.transform(test_x))
     return float((predicted == test_y).mean())
+
+
+# --------------------------------------------------------------------------------------------
+# uncertainty and errors
+
+
+def bootstrap_recall_intervals(ranks: np.ndarray, ks: Sequence[int], resamples: int = 1000, seed: int = 0,
+                               level: float = 0.95) -> dict[int, tuple[float, float]]:
+    """Percentile-bootstrap interval of recall@K over the scored queries (Efron & Tibshirani 1993, §13.3).
+
+    ``ranks`` as ``first_hit_ranks`` gives them (-1 = no hit, left out as in the recall). One set
+    of ``resamples`` draws of the queries with replacement, ``numpy.random.default_rng(seed)
+    .integers(0, n, (resamples, n))``, serves every K; the interval is the (1 - level) / 2 and
+    (1 + level) / 2 quantiles (linear interpolation) of the resampled recalls. Drawn 256 resamples
+    at a time (the same numbers as one draw), so memory stays at (256, n).
+    """
+    ks = _check_ks(ks)
+    if resamples < 1 or not 0 < level < 1:
+        raise ValueError(f"need at least one resample and a level in (0, 1), got {resamples} and {level}")
+    valid = np.asarray(ranks)[np.asarray(ranks) >= 0]                             # (n,)
+    if valid.size == 0:
+        raise ValueError("no query has a hit in the gallery, so recall has no interval")
+    rng, recalls = np.random.default_rng(seed), []
+    for start in range(0, resamples, 256):
+        drawn = valid[rng.integers(0, valid.size, (min(256, resamples - start), valid.size))]   # (b, n)
+        recalls.append(np.stack([(drawn < k).mean(axis=1) for k in ks], axis=1))              # (b, len(ks))
+    low, high = np.quantile(np.concatenate(recalls), [(1 - level) / 2, (1 + level) / 2], axis=0)  # (len(ks),)
+    return {k: (float(lo), float(hi)) for k, lo, hi in zip(ks, low, high)}
+
+
+def zero_shot_predictions(image_emb: np.ndarray, class_emb: np.ndarray) -> np.ndarray:
+    """The class each image is most similar to (ties: lower class index). (N,) int"""
+    return (np.asarray(image_emb, dtype=np.float32) @ np.asarray(class_emb, dtype=np.float32).T).argmax(axis=1)
+
+
+def confusion_matrix(true: Sequence[int], predicted: Sequence[int], classes: int) -> np.ndarray:
+    """(C, C) counts: row = true class, column = predicted class (scikit-learn's layout)."""
+    true, predicted = np.asarray(true, dtype=np.int64), np.asarray(predicted, dtype=np.int64)
+    if true.shape != predicted.shape or true.ndim != 1:
+        raise ValueError(f"give one prediction per true class, got {true.shape} and {predicted.shape}")
+    if true.size and (min(true.min(), predicted.min()) < 0 or max(true.max(), predicted.max()) >= classes):
+        raise ValueError(f"class indices must lie in 0..{classes - 1}")
+    return np.bincount(true * classes + predicted, minlength=classes * classes).reshape(classes, classes)
+
+
+def per_class_recall(confusion: np.ndarray) -> np.ndarray:
+    """Share of each true class predicted as itself; NaN for a class with no rows. (C,)"""
+    support = confusion.sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(support > 0, np.diag(confusion) / support, np.nan)
 
 
 # --------------------------------------------------------------------------------------------

@@ -92,6 +92,13 @@ class TrainConfig:
     checkpoint_every: int = _f(100, "checkpoint every N steps (and always at the end); 0 = only at the end")
     keep_checkpoints: int = _f(2, "keep this many newest checkpoints")
     length_buckets: bool = _f(True, "group captions of similar token length inside each batch's chunks")
+    eval_every: int = _f(0, "every N steps (and at the last), recall on a fixed subset of data.eval_split from "
+                            "cached features, logged to metrics.jsonl as val/...; 0 = off")
+    eval_samples: int = _f(512, "validation pairs drawn (seeded by train.seed) for eval_every; fewer if the split "
+                                "is smaller")
+    keep_best: str = _f("", "keep the checkpoint of the best validation step by this metric (a recall key such as "
+                            "text_to_image_recall@1, or mean_recall); evaluate, export and the service use it. "
+                            "Empty = the newest")
 
 
 @dataclass
@@ -245,6 +252,29 @@ def _validate(recipe: Recipe) -> None:
         raise RecipeError(f"vision.image_size must be 0 (native) or between 32 and {MAX_IMAGE_SIZE}, got {v.image_size}",
                           "the tower's native size (0) is what its weights were trained at; 160 or 224 are usual")
     _validate_eval(ev)
+    _validate_validation(tr, ev)
+
+
+def validation_metric_names(recall_ks: list[int]) -> list[str]:
+    """What train.keep_best may name: each recall the validation logs, and their mean."""
+    return [f"{d}_recall@{k}" for d in ("text_to_image", "image_to_text") for k in recall_ks] + ["mean_recall"]
+
+
+def _validate_validation(tr: TrainConfig, ev: EvalConfig) -> None:
+    if tr.eval_every < 0:
+        raise RecipeError(f"train.eval_every must be 0 (off) or a number of steps, got {tr.eval_every}",
+                          "for example train.eval_every=50")
+    if tr.eval_samples < 2:
+        raise RecipeError(f"train.eval_samples must be at least 2, got {tr.eval_samples}",
+                          "recall ranks each caption among the drawn images; for example 512")
+    if tr.keep_best:
+        names = validation_metric_names(ev.recall_ks)
+        if tr.keep_best not in names:
+            raise RecipeError(f"train.keep_best = {tr.keep_best!r} is not a validation metric",
+                              f"one of: {', '.join(names)}; or \"\" to keep the newest checkpoints")
+        if not tr.eval_every:
+            raise RecipeError("train.keep_best needs validation during training, but train.eval_every is 0",
+                              "set train.eval_every, e.g. train.eval_every=50")
 
 
 def _validate_counts(recipe: Recipe) -> None:

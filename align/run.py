@@ -1,19 +1,24 @@
 """A run folder: what ``align train`` writes and what evaluate, export, index and the service read.
 
     RUN/recipe.resolved.toml     the recipe the run trains with (every default filled in)
-    RUN/metrics.jsonl            one line per logged step
+    RUN/metrics.jsonl            one line per logged step (with val/... keys where validation ran)
     RUN/resumes.jsonl            one line per resume that changed a free field (steps, logging, ...)
     RUN/tokenizer/               the scratch tower's tokenizer, or the extended one with added terms
     RUN/checkpoints/step-N/      see ``align.checkpoint``
     RUN/metrics.json             what ``align evaluate`` measured
+    RUN/evaluation.json          its details (intervals, confusion matrices, gallery) for the report
+    RUN/report.html, RUN/plots/  the report ``align evaluate`` / ``align report`` write
 
 ``RunDir`` is the one place that knows this layout: it reads the resolved recipe, finds checkpoints,
-reads their progress record, rebuilds the trained text tower and loss from a checkpoint, refuses a
-different image tower, and decides whether a recipe may resume the run.
+reads their progress record, picks the checkpoint evaluate and export default to (the best
+validation step when ``train.keep_best`` names a metric, else the newest) and keeps it from being
+pruned, rebuilds the trained text tower and loss from a checkpoint, refuses a different image tower,
+and decides whether a recipe may resume the run.
 """
 from __future__ import annotations
 
 import json
+import shutil
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -34,7 +39,8 @@ from .vision import tower_differences
 # checkpoints, how fast features are built and how it is evaluated, never what a step computes.
 # Every other field shapes the weights (tower, text kind, LoRA shape, loss, batch, seed, schedule).
 RESUMABLE_CHANGES = ("name", "train.steps", "train.log_every", "train.checkpoint_every",
-                     "train.keep_checkpoints", "train.threads", "vision.batch_size", "vision.workers",
+                     "train.keep_checkpoints", "train.threads", "train.eval_every", "train.eval_samples",
+                     "train.keep_best", "vision.batch_size", "vision.workers",
                      "vision.feature_cache", "data.eval_split", "eval.")
 
 
@@ -66,6 +72,27 @@ def trainable_parameters(tower: TextTower, loss_fn: torch.nn.Module) -> dict[str
     named = {f"text.{n}": p for n, p in tower.named_parameters() if p.requires_grad}
     named |= {f"loss.{n}": p for n, p in loss_fn.named_parameters() if p.requires_grad}
     return named
+
+
+def best_logged_step(records: list[dict], key: str, steps: set[int] | None = None) -> tuple[int, float] | None:
+    """(step, value) of the logged record with the highest ``key``, among ``steps`` when given; a tie
+    goes to the earlier step. None when no record has the key."""
+    best = None
+    for record in records:
+        step, value = record.get("step"), record.get(key)
+        if isinstance(value, (int, float)) and (steps is None or step in steps):
+            if best is None or value > best[1] or (value == best[1] and step < best[0]):
+                best = (int(step), float(value))
+    return best
+
+
+@dataclass
+class CheckpointChoice:
+    """The checkpoint a command uses, and why, in words for the user."""
+
+    path: Path
+    reason: str
+    best: tuple[int, float] | None = None  # (step, value) of the best validation, when chosen by it
 
 
 @dataclass
@@ -136,12 +163,10 @@ class RunDir:
         return found[-1] if found else None
 
     def checkpoint(self, chosen: str | Path | None = None) -> Path:
-        """The named checkpoint (a path, or a name under checkpoints/), else the newest."""
+        """The named checkpoint (a path, or a name under checkpoints/), else the default one:
+        the best validation step's with ``train.keep_best``, otherwise the newest."""
         if chosen is None:
-            latest = self.latest()
-            if latest is None:
-                raise AlignError(f"{self.path} has no checkpoint", "train it first: align train RECIPE --run-dir DIR")
-            return latest
+            return self.default_checkpoint().path
         path = Path(chosen)
         if not path.is_dir():
             path = self.path / A.CHECKPOINTS / str(chosen)
@@ -149,6 +174,61 @@ class RunDir:
             names = ", ".join(p.name for p in self.checkpoints()) or "none"
             raise AlignError(f"no complete checkpoint {chosen} in {self.path}", f"pick one of: {names}")
         return path
+
+    def log_records(self) -> list[dict]:
+        """The training log's records (a line torn by a kill is skipped)."""
+        if not self.metrics_log.is_file():
+            return []
+        records = []
+        for line in self.metrics_log.read_text(encoding="utf-8").splitlines():
+            try:
+                record = json.loads(line)
+            except json.JSONDecodeError:
+                continue
+            if isinstance(record, dict) and "step" in record:
+                records.append(record)
+        return records
+
+    def best_checkpoint(self, recipe: Recipe | None = None) -> tuple[Path, int, float] | None:
+        """(checkpoint, step, value) of the best logged validation by ``train.keep_best`` among the
+        steps that have a checkpoint (ties: the earlier step); None when the recipe names no metric."""
+        metric = (recipe or self.recipe()).train.keep_best
+        if not metric:
+            return None
+        by_step = {int(read_progress(p).get("step", -1)): p for p in self.checkpoints()}
+        best = best_logged_step(self.log_records(), f"val/{metric}", set(by_step))
+        return (by_step[best[0]], *best) if best else None
+
+    def default_checkpoint(self) -> CheckpointChoice:
+        """What evaluate, export and the service use when no checkpoint is named, and why."""
+        latest = self.latest()
+        if latest is None:
+            raise AlignError(f"{self.path} has no checkpoint", "train it first: align train RECIPE --run-dir DIR")
+        recipe = self.recipe()
+        best = self.best_checkpoint(recipe)
+        if best is None:
+            why = (f"; no validation of val/{recipe.train.keep_best} is logged beside a checkpoint"
+                   if recipe.train.keep_best else "")
+            return CheckpointChoice(latest, f"{latest.name}, the newest{why}")
+        path, step, value = best
+        key = f"val/{recipe.train.keep_best}"
+        last = max((r for r in self.log_records() if key in r), key=lambda r: r["step"], default=None)
+        tail = f"; the last validation, step {last['step']}, scored {last[key]:.4f}" if last else ""
+        return CheckpointChoice(path, f"{path.name}, the best by {key} ({value:.4f} at step {step}{tail})",
+                                (step, value))
+
+    def describe(self, checkpoint: Path) -> str:
+        """A checkpoint in words: why the default was chosen, or that it was asked for."""
+        choice = self.default_checkpoint()
+        return choice.reason if Path(checkpoint) == choice.path else f"{Path(checkpoint).name}, as asked"
+
+    def prune_checkpoints(self, keep: int) -> None:
+        """Remove all but the newest ``keep`` checkpoints and the best one (``train.keep_best``)."""
+        found = self.checkpoints()
+        best = self.best_checkpoint() if self.recipe_path.is_file() else None
+        for old in found[:-keep] if keep > 0 else []:
+            if best is None or old != best[0]:
+                shutil.rmtree(old, ignore_errors=True)
 
     def progress(self, checkpoint: Path | None = None) -> dict:
         """A checkpoint's progress record (step, elapsed time, the tower it trained against); {} if none."""

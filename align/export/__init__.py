@@ -101,7 +101,7 @@ def export_run(run_dir: str | Path, out: str | Path, *, checkpoint: str | Path |
     except BaseException:
         shutil.rmtree(temp, ignore_errors=True)
         raise
-    console.print(f"[green]exported[/green] {run.path} ({trained.checkpoint.name}) to {out} in "
+    console.print(f"[green]exported[/green] {run.path} ({run.describe(trained.checkpoint)}) to {out} in "
                   f"{info['export_seconds']:.1f}s; merged vs trained {checks['merged_max_abs_diff']:.2e}")
     return info
 

@@ -1,5 +1,6 @@
-"""The loop's data: the training split lined up with its frozen features, shared by every rank, and
-what each step trains on (the seeded batch, and with several cached views, one view per row per epoch).
+"""The loop's data: the training split lined up with its frozen features (and, with validation on,
+the fixed validation subset), shared by every rank, and what each step trains on (the seeded batch,
+and with several cached views, one view per row per epoch).
 """
 from __future__ import annotations
 
@@ -19,6 +20,7 @@ from ..run import shards_dir
 from ..seeding import VIEW_STREAM, epoch_generator
 from ..vision import FrozenImageTower
 from .sampler import EpochSampler
+from .validation import ValidationSet, prepare_validation
 
 
 @dataclass
@@ -33,6 +35,7 @@ class TrainingData:
     label_ids: torch.Tensor | None  # (N,) equal id = same labels; -1 = none
     tower_fingerprint: dict
     image_views: torch.Tensor | None = None  # (N, K, D) float16 when vision.views > 1; view 0 = image_features
+    validation: ValidationSet | None = None  # the fixed validation subset, when train.eval_every is on
     # the tower that embedded the rows, where this process holds it (the rank that ran it), so the
     # loop can prove it unchanged at the end; never sent to other ranks
     image_tower: FrozenImageTower | None = field(default=None, repr=False, compare=False)
@@ -51,9 +54,11 @@ def prepare_training_data(recipe: Recipe, console: Console) -> TrainingData:
     captions = [table.captions[i] for i in rows]
     labels = [table.labels[i] for i in rows]
     caption_ids, label_ids = positive_ids(captions, labels, recipe.loss.positives)
+    validation = prepare_validation(recipe, data_dir, console) if recipe.train.eval_every else None
     return TrainingData(keys=keys, captions=captions, labels=labels, image_features=feats.rows_for(keys),
                         caption_ids=caption_ids, label_ids=label_ids, tower_fingerprint=side.fingerprint,
-                        image_views=feats.view_rows_for(keys) if feats.views > 1 else None, image_tower=tower)
+                        image_views=feats.view_rows_for(keys) if feats.views > 1 else None, validation=validation,
+                        image_tower=tower)
 
 
 def shared_training_data(recipe: Recipe, console: Console, accelerator) -> TrainingData:

@@ -1,9 +1,10 @@
 """The training loop: a text tower learns to land in the frozen image tower's space.
 
 ``train`` reads top to bottom in phases: process group -> run folder -> frozen features (the image
-tower runs once, never per step) -> text tower, loss, optimizer, schedule -> resume -> steps ->
-final checkpoint -> the image tower proven untouched. Runs on accelerate, so the same code serves
-one CPU process and many GPU processes.
+tower runs once, never per step) -> text tower, loss, optimizer, schedule -> resume -> steps (with
+validation every ``train.eval_every``, and a checkpoint at each new best when ``train.keep_best``
+names a metric) -> final checkpoint -> the image tower proven untouched. Runs on accelerate, so the
+same code serves one CPU process and many GPU processes.
 """
 from __future__ import annotations
 
@@ -21,12 +22,13 @@ from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, T
 from ..checkpoint import apply_weights, load_training_state, load_weights, save_checkpoint
 from ..errors import AlignError
 from ..recipe import Recipe, TrainConfig, dump_recipe
-from ..run import RunDir, build_models, quiet_transformers, trainable_parameters
+from ..run import RunDir, best_logged_step, build_models, quiet_transformers, trainable_parameters
 from ..text import TextTower, text_kind
 from ..vision import weights_sha256
 from .data import StepBatch, StepBatches, TrainingData, shared_training_data
 from .sampler import warmup_cosine
 from .step import contrastive_step, step_seed
+from .validation import PREFIX, improves, validation_recall
 
 
 def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, console: Console | None = None,
@@ -59,11 +61,12 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, console:
     start_step, elapsed_before = _restore(learner, run, previous, changes, cfg, console, accelerator.is_main_process)
     learner.prepare(accelerator)
     checkpoint = _checkpointer(run, learner, recipe, data.tower_fingerprint, accelerator)
+    validator = _Validator(recipe, run, data, learner, accelerator)
     # steps: each rank encodes its slice of the global batch; the loss sees all of it
     log = _LogWindow(run.metrics_log, accelerator.is_main_process, cfg.batch_size, elapsed_before)
     try:
         last_record, stopped_early = _run_steps(learner, batches, accelerator, cfg, start_step, log, checkpoint,
-                                                on_step, console)
+                                                on_step, console, validator)
     except Diverged as exc:  # nothing after the last checkpoint is saved: it stays the run's newest
         raise exc.for_user(run, recipe) from None
     total_elapsed = log.elapsed()
@@ -190,7 +193,8 @@ def _checkpointer(run: RunDir, learner: _Learner, recipe: Recipe, tower_fingerpr
         if accelerator.is_main_process:
             save_checkpoint(run.path, step, dict(learner.named), learner.optimizer, learner.scheduler,
                             {"elapsed_s": elapsed, "recipe": recipe.name, "tower": tower_fingerprint},
-                            recipe_toml, keep=cfg.keep_checkpoints)
+                            recipe_toml, keep=0)
+            run.prune_checkpoints(cfg.keep_checkpoints)  # the newest ones, and the best validation's
         accelerator.wait_for_everyone()
     return checkpoint
 
@@ -217,9 +221,11 @@ def _optimizer_step(learner: _Learner, batch: StepBatch, accelerator, autocast, 
 
 def _run_steps(learner: _Learner, batches: StepBatches, accelerator, cfg: TrainConfig, start_step: int,
                log: _LogWindow, checkpoint: Callable[[int, float], None],
-               on_step: Callable[[dict], bool | None] | None, console: Console) -> tuple[dict, bool]:
-    """Steps from ``start_step`` on, logging and checkpointing on cadence. Returns (the last log
-    record, whether ``on_step`` stopped the run)."""
+               on_step: Callable[[dict], bool | None] | None, console: Console,
+               validator: _Validator) -> tuple[dict, bool]:
+    """Steps from ``start_step`` on, logging, validating and checkpointing on cadence. Returns (the
+    last log record, whether ``on_step`` stopped the run). A validation step is always logged, so its
+    val/... keys ride on that step's one log line."""
     autocast = torch.autocast(device_type=accelerator.device.type, dtype=torch.bfloat16,
                               enabled=cfg.precision == "bf16")
     learner.model.train()
@@ -230,14 +236,18 @@ def _run_steps(learner: _Learner, batches: StepBatches, accelerator, cfg: TrainC
             loss = _optimizer_step(learner, batches(step), accelerator, autocast, cfg, step)
             log.add(float(loss.detach()))
             done = step + 1
-            if done % cfg.log_every == 0 or done == cfg.steps:
-                last_record = log.record(done, learner, batches.epoch_of(done))
+            validates = validator.due(done)
+            new_best = False
+            if done % cfg.log_every == 0 or done == cfg.steps or validates:
+                scores, new_best = validator(done) if validates else ({}, False)
+                last_record = log.record(done, learner, batches.epoch_of(done), scores)
                 progress.update(task, completed=done, loss=f"{last_record['loss']:.3f}",
                                 rate=f"{last_record['pairs_per_s']:.0f}")
                 if on_step is not None and on_step(last_record) is False:
                     checkpoint(done, last_record["elapsed_s"])
                     return last_record, True
-            if cfg.checkpoint_every and done % cfg.checkpoint_every == 0 and done < cfg.steps:
+            on_cadence = cfg.checkpoint_every and done % cfg.checkpoint_every == 0
+            if (on_cadence or new_best) and done < cfg.steps:  # the last step's checkpoint comes after the loop
                 checkpoint(done, log.elapsed())
     return last_record, False
 
@@ -258,17 +268,54 @@ class _LogWindow:
         """Seconds trained in all, earlier attempts included."""
         return self.elapsed_before + (time.perf_counter() if now is None else now) - self.started
 
-    def record(self, step: int, learner: _Learner, epoch: float) -> dict:
+    def record(self, step: int, learner: _Learner, epoch: float, validation: dict | None = None) -> dict:
         now = time.perf_counter()
         rate = self.pairs / max(now - self.window_start, 1e-9)
         record = {"step": step, "loss": self.loss / (self.pairs // self.batch_size),
                   "lr": learner.scheduler.get_last_lr()[0], "temperature": float(learner.loss_fn.temperature()),
-                  "pairs_per_s": rate, "epoch": epoch, "elapsed_s": self.elapsed(now)}
+                  "pairs_per_s": rate, "epoch": epoch, "elapsed_s": self.elapsed(now), **(validation or {})}
         if self.write:
             with open(self.path, "a", encoding="utf-8") as fh:
                 fh.write(json.dumps(record) + "\n")
         self.loss, self.pairs, self.window_start = 0.0, 0, now
         return record
+
+
+class _Validator:
+    """Recall on the fixed validation subset at ``train.eval_every`` steps (and the last one).
+
+    The main process scores (the unwrapped tower, no collective call inside) and tells the other
+    ranks the scores and whether they beat the best logged so far, so every rank agrees on when to
+    checkpoint. The best so far comes from the log, which a resume has already cut back to its step.
+    """
+
+    def __init__(self, recipe: Recipe, run: RunDir, data: TrainingData, learner: _Learner, accelerator):
+        cfg = recipe.train
+        self.every, self.last, self.ks = cfg.eval_every, cfg.steps, recipe.eval.recall_ks
+        self.validation, self.learner, self.accelerator = data.validation, learner, accelerator
+        self.key = PREFIX + cfg.keep_best if cfg.keep_best else None
+        best = (best_logged_step(run.log_records(), self.key)
+                if self.key and accelerator.is_main_process else None)
+        self.best = best[1] if best else None
+        if self.every and self.validation is None:
+            raise AlignError("train.eval_every is on but the training data carries no validation subset",
+                             "let train() prepare the data, or pass TrainingData from prepare_training_data")
+
+    def due(self, step: int) -> bool:
+        return bool(self.every) and (step % self.every == 0 or step == self.last)
+
+    def __call__(self, step: int) -> tuple[dict, bool]:
+        answer: list = [None]
+        if self.accelerator.is_main_process:
+            scores = validation_recall(self.learner.tower, self.validation, self.ks, self.accelerator.device)
+            new_best = self.key is not None and improves(scores[self.key], self.best)
+            if new_best:
+                self.best = scores[self.key]
+            answer[0] = (scores, new_best)
+        if self.accelerator.num_processes > 1:
+            import torch.distributed as dist
+            dist.broadcast_object_list(answer, src=0)
+        return answer[0]
 
 
 def _progress(console: Console) -> Progress:
