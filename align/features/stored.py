@@ -99,6 +99,8 @@ def _cosines(tower: FrozenImageTower, feats: FeatureSet, sample: list[tuple[str,
             keys.append(key)
         except Exception:  # noqa: BLE001 - an image that does not decode is simply not in the sample
             continue
+    if not keys:
+        return [], np.zeros(0)
     own = torch.cat([tower.embed_pixels(torch.stack(pixels[i:i + batch])) for i in range(0, len(pixels), batch)])
     theirs = feats.rows_for(keys)  # (n, D), unit length
     return keys, (own * theirs).sum(dim=1).numpy()  # (n,)
@@ -121,11 +123,11 @@ def check_stored_vectors(feats: FeatureSet, tower: FrozenImageTower, shards_dir:
                                                      f"-{cfg.check_rows}.json")
     report = _read_report(path)
     if report is None:
-        sample = _first_images(Path(shards_dir), split, set(feats.keys), cfg.check_rows)
-        if not sample:
-            console.print(f"[yellow]no {split} image has a stored vector: the vectors could not be checked")
+        keys, cosine = _cosines(tower, feats, _first_images(Path(shards_dir), split, set(feats.keys), cfg.check_rows),
+                                cfg.batch_size)
+        if not keys:
+            console.print(f"[yellow]no {split} image with a stored vector decodes: the vectors could not be checked")
             return None
-        keys, cosine = _cosines(tower, feats, sample, cfg.batch_size)
         report = {"split": split, "rows": len(keys), "threshold": CHECK_MIN_COSINE,
                   "min_cosine": float(np.min(cosine)), "median_cosine": float(np.median(cosine)),
                   "below": int((~(cosine >= CHECK_MIN_COSINE)).sum()),

@@ -129,6 +129,12 @@ def confine_recipe_paths(recipe: Recipe, settings: Settings, data: str | None = 
     confine_packed(Path(recipe.data.shards), roots, "data")  # a clear error now, not when the job starts
     if recipe.vision.weights:
         recipe.vision.weights = str(confine(recipe.vision.weights, roots, "vision.weights"))
+    if recipe.vision.model_path:  # a transformers folder, an .onnx or a program file
+        recipe.vision.model_path = str(confine(recipe.vision.model_path, roots, "vision.model_path"))
+        if Path(recipe.vision.model_path).is_dir():
+            confine_tree(Path(recipe.vision.model_path), roots, "vision.model_path")
+    if recipe.vision.preprocess.file:
+        recipe.vision.preprocess.file = str(confine(recipe.vision.preprocess.file, roots, "vision.preprocess.file"))
     if recipe.text.model:
         recipe.text.model = str(confine(recipe.text.model, roots, "text.model"))
         if Path(recipe.text.model).is_dir():

@@ -51,7 +51,7 @@ def shared_image_tower(cfg: VisionConfig) -> FrozenImageTower:
     trains, evaluates, exports and indexes against one tower: loading and hashing it costs ~1 s
     each time). The key includes every file's size and modification time, so a replaced file is
     loaded afresh. The tower is frozen, so sharing it cannot change a result."""
-    key = (repr(cfg.source), cfg.model, cfg.model_path, cfg.pooling, repr(cfg.preprocess), cfg.image_size,
+    key = (cfg.source, cfg.model, cfg.model_path, cfg.pooling, repr(cfg.preprocess), cfg.image_size,
            cfg.channels_last, tuple(_stamp(p) for p in tower_files(cfg)))
     if key not in _SHARED:
         _SHARED.clear()  # one tower at a time: a process that switches towers does not keep the old one

@@ -18,6 +18,7 @@ import torch.nn.functional as F
 from PIL import Image
 
 from .identity import NORMALISATION, plain_json
+from .memory import peak_op_elements
 
 
 class FrozenImageTower(ABC):
@@ -86,6 +87,4 @@ class FrozenImageTower(ABC):
 
     def activation_elements(self, side: int) -> int:
         """Elements alive at the worst step of one image's forward pass at ``side`` px, weights excluded."""
-        from .memory import peak_op_elements
-
         return peak_op_elements(self._forward, self.model, side)
