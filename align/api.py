@@ -23,7 +23,7 @@ from . import artifacts as A
 from .errors import AlignError, FingerprintMismatch
 from .recipe import PreprocessConfig, VisionConfig
 from .text import TextTower, text_kind
-from .vision import TOWER_IDENTITY, load_image_tower, tower_differences
+from .vision import TOWER_IDENTITY, shared_image_tower, tower_differences
 
 def read_json(path: Path, what: str, hint: str) -> dict:
     if not path.is_file():
@@ -119,7 +119,7 @@ def vision_config_for(image_side: dict, weights: str | Path | None = None) -> Vi
 def load_checked_tower(image_side: dict, weights: str | Path | None = None):
     """The frozen tower image_side.json describes, refused when its fingerprint differs."""
     cfg = vision_config_for(image_side, weights)
-    tower = load_image_tower(cfg)
+    tower = shared_image_tower(cfg)  # the service's index phase reuses the tower its job trained with
     differences = tower_differences(image_side, tower.fingerprint)
     if differences:
         recorded = image_side.get("weights", {})
@@ -144,10 +144,14 @@ def check_image_side_matches(export_dir: str | Path, fingerprint: dict) -> None:
 
 def open_rgb(item: Image.Image | str | Path) -> Image.Image:
     """An upright RGB image from a PIL image or a path (EXIF orientation applied, as a viewer shows it)."""
+    from .data.pixels import UnsupportedPixels, to_rgb8
     from .data.shards import decode_image
 
     if isinstance(item, Image.Image):
-        return item.convert("RGB")
+        try:  # the same rule as packed images: 16-bit samples scaled, not clipped
+            return to_rgb8(item)
+        except UnsupportedPixels as exc:
+            raise AlignError(f"cannot use this image: {exc}", "convert it to 8- or 16-bit RGB or grayscale") from None
     path = Path(item)
     if not path.is_file():
         raise AlignError(f"no image at {path}", "pass existing image paths or PIL images")
@@ -170,6 +174,7 @@ class AlignedModel:
         self.info = info
         self._weights = weights
         self._tower = tower
+        self._passes_before = tower.forward_passes if tower is not None else 0
 
     @property
     def embedding_dim(self) -> int:
@@ -194,13 +199,15 @@ class AlignedModel:
 
     @property
     def tower_forward_passes(self) -> int:
-        return self._tower.forward_passes if self._tower is not None else 0
+        # counted from when this model took the tower: a shared tower may have run for others before
+        return self._tower.forward_passes - self._passes_before if self._tower is not None else 0
 
     @property
     def image_tower(self):
         """The frozen tower, rebuilt and fingerprint-checked on first use."""
         if self._tower is None:
             self._tower = load_checked_tower(self.image_side, self._weights)
+            self._passes_before = self._tower.forward_passes
         return self._tower
 
     def tokenize(self, texts: Sequence[str]) -> dict[str, torch.Tensor]:

@@ -41,7 +41,7 @@ from .vision import tower_differences
 RESUMABLE_CHANGES = ("name", "train.steps", "train.log_every", "train.checkpoint_every",
                      "train.keep_checkpoints", "train.threads", "train.eval_every", "train.eval_samples",
                      "train.keep_best", "vision.batch_size", "vision.workers",
-                     "vision.feature_cache", "data.eval_split", "eval.")
+                     "vision.feature_cache", "vision.check_rows", "data.eval_split", "eval.")
 
 
 def quiet_transformers() -> None:
@@ -261,7 +261,8 @@ class RunDir:
             raise FingerprintMismatch(
                 f"the run was trained against another image tower than the recipe now loads "
                 f"({'; '.join(differences)})",
-                "use the vision.model, vision.weights and vision.image_size the run was trained with")
+                "use the [vision] settings the run was trained with (source, model or model_path, weights, "
+                "image_size, pooling; recipe.resolved.toml has them)")
 
     # -- resuming ----------------------------------------------------------------------------
     def check_resume(self, recipe: Recipe) -> dict[str, tuple]:
