@@ -296,7 +296,7 @@ def test_source_mistakes_raise_data_errors_with_hints(tmp_path: Path):
     with pytest.raises(DataError, match="no images found"):
         pack_source(tmp_path / "empty", tmp_path / "out", console=quiet())
     (tmp_path / "cols.csv").write_text("path,text\na.jpg,x\n")
-    with pytest.raises(DataError, match="needs 'image' and 'caption'"):
+    with pytest.raises(DataError, match=r"needs 'image' \(or, with stored vectors, 'key'\) and 'caption'"):
         pack_source(tmp_path / "cols.csv", tmp_path / "out", console=quiet())
     with pytest.raises(DataError, match="val_fraction"):
         pack_source(tmp_path / "cols.csv", tmp_path / "out", val_fraction=1.5, console=quiet())
