@@ -182,11 +182,8 @@ def _add_recipe_args(p: argparse.ArgumentParser, required: bool = True) -> None:
                    help="override a recipe value (repeatable), e.g. --set train.steps=50")
 
 
-def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(prog="align", description="Train a text tower into a frozen image tower's "
-                                     "embedding space, evaluate it and hand it to retrieval.")
-    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
-
+def _add_pack_command(sub) -> None:
+    """The packing command."""
     p = sub.add_parser("pack", help="validate image-caption pairs and write webdataset shards")
     p.add_argument("source", help="a folder (image + same-stem .txt [+ .json labels]) or a .csv/.jsonl file")
     p.add_argument("--out", required=True, help="output folder for shards, manifest.json and rejected.jsonl")
@@ -206,6 +203,9 @@ def build_parser() -> argparse.ArgumentParser:
                                                               "(default: the most common width in the file)")
     p.set_defaults(func=cmd_pack)
 
+
+def _add_run_commands(sub) -> None:
+    """Training and reading a run."""
     p = sub.add_parser("train", help="train the text tower of a recipe")
     _add_recipe_args(p)
     p.add_argument("--run-dir", help="run folder (default runs/<recipe name>)")
@@ -228,6 +228,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--metric", default="mean_recall", help="validation metric drawn and ranked (without val/)")
     p.set_defaults(func=cmd_compare)
 
+
+def _add_data_commands(sub) -> None:
+    """Features, vocabulary and the demo."""
     p = sub.add_parser("features", help="cache the frozen image features a recipe needs, ahead of training")
     _add_recipe_args(p)
     p.set_defaults(func=cmd_features)
@@ -249,6 +252,9 @@ def build_parser() -> argparse.ArgumentParser:
     _add_recipe_args(p, required=False)
     p.set_defaults(func=cmd_demo)
 
+
+def _add_handoff_commands(sub) -> None:
+    """Hand-off to retrieval."""
     p = sub.add_parser("export", help="adapter, merged encoder, ONNX, image-side contract and card of a run")
     p.add_argument("run_dir", help="a folder written by align train")
     p.add_argument("--out", required=True, help="export folder (replaced only once the new export is complete)")
@@ -286,6 +292,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--export", help="the export to embed queries with (default: the one the index was built with)")
     p.set_defaults(func=cmd_query)
 
+
+def _add_service_commands(sub) -> None:
+    """The service and its client."""
     p = sub.add_parser("serve", help="the training service: an HTTP job queue, search endpoints and a status page")
     p.add_argument("--host", default="127.0.0.1", help="address to bind (beyond loopback every call needs the token)")
     p.add_argument("--port", type=int, default=8765, help="port to listen on")
@@ -323,6 +332,18 @@ def build_parser() -> argparse.ArgumentParser:
             if name == "show":
                 q.add_argument("--json", action="store_true", help="print the job as JSON")
     p.set_defaults(func=cmd_jobs)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="align", description="Train a text tower into a frozen image tower's "
+                                     "embedding space, evaluate it and hand it to retrieval.")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    _add_pack_command(sub)
+    _add_run_commands(sub)
+    _add_data_commands(sub)
+    _add_handoff_commands(sub)
+    _add_service_commands(sub)
     return parser
 
 
