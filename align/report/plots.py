@@ -27,6 +27,11 @@ def _png(fig) -> bytes:
     return buffer.getvalue()
 
 
+def _recall_axis(ax, lowest: float) -> None:
+    """A recall axis from just under the lowest value drawn to 1: recalls near 1 still show apart."""
+    ax.set_ylim(max(0.0, np.floor((lowest - 0.02) * 20) / 20), 1.005)
+
+
 def _series(records: list[dict], key: str) -> tuple[list[int], list[float]]:
     points = [(r["step"], r[key]) for r in records if isinstance(r.get(key), (int, float))]
     return [p[0] for p in points], [p[1] for p in points]
@@ -72,11 +77,11 @@ def validation_curves(records: list[dict], best: tuple[int, float] | None = None
         ax.axvline(best[0], color="#1d2330", linestyle="--", linewidth=1)
         ax.annotate(f"best {best_key[4:] if best_key else ''}: step {best[0]}", (best[0], best[1]),
                     textcoords="offset points", xytext=(6, -14), fontsize=8)
-    ax.set_ylim(0, 1.02)
+    _recall_axis(ax, min(v for key in keys for v in _series(records, key)[1]))
     ax.set_xlabel("step")
     ax.set_ylabel("recall (validation subset)")
     ax.grid(alpha=0.3)
-    ax.legend(fontsize=7, ncol=2, loc="lower right")
+    ax.legend(fontsize=7, ncol=4, loc="upper center", bbox_to_anchor=(0.5, -0.18), frameon=False)
     fig.tight_layout()
     return _png(fig)
 
@@ -86,6 +91,7 @@ def recall_intervals(recall: dict[str, dict], level: float) -> bytes | None:
     if not recall:
         return None
     fig, ax = plt.subplots(figsize=(5.2, 3.0))
+    lowest = 1.0
     for offset, (direction, colour, name) in zip((-0.12, 0.12), (("text_to_image", T2I, "text → image"),
                                                                   ("image_to_text", I2T, "image → text"))):
         rows = sorted((int(k.split("@")[1]), v) for k, v in recall.items() if k.startswith(direction))
@@ -93,13 +99,14 @@ def recall_intervals(recall: dict[str, dict], level: float) -> bytes | None:
             continue
         x = np.arange(len(rows)) + offset
         values = np.array([v["value"] for _, v in rows])
+        lowest = min(lowest, *(v["low"] for _, v in rows))
         errors = np.array([[v["value"] - v["low"] for _, v in rows], [v["high"] - v["value"] for _, v in rows]])
         ax.errorbar(x, values, yerr=np.clip(errors, 0, None), fmt="o", color=colour, capsize=4, label=name)
         ax.set_xticks(np.arange(len(rows)), [f"R@{k}" for k, _ in rows])
-    ax.set_ylim(0, 1.02)
+    _recall_axis(ax, lowest)
     ax.set_ylabel(f"recall ({level:.0%} interval)")
     ax.grid(alpha=0.3, axis="y")
-    ax.legend(fontsize=8)
+    ax.legend(fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.12), ncol=2, frameon=False)
     fig.tight_layout()
     return _png(fig)
 
@@ -117,7 +124,7 @@ def field_accuracy(fields: dict[str, dict]) -> bytes | None:
     ax.set_ylim(0, 1.02)
     ax.set_ylabel("accuracy")
     ax.grid(alpha=0.3, axis="y")
-    ax.legend(fontsize=8)
+    ax.legend(fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.12), ncol=2, frameon=False)
     fig.tight_layout()
     return _png(fig)
 
