@@ -69,7 +69,9 @@ class _Trained:
 
 def export_run(run_dir: str | Path, out: str | Path, *, checkpoint: str | Path | None = None, onnx: bool = True,
                console: Console | None = None) -> dict:
-    """Export the newest (or given) checkpoint of ``run_dir`` into ``out``; returns export.json's content."""
+    """Export a checkpoint of ``run_dir`` into ``out``; returns export.json's content.
+
+    The default checkpoint is the best-validating one when the run kept one, else the newest."""
     console = console or Console(stderr=True)
     started = time.perf_counter()
     run, out = RunDir(run_dir), Path(out)
