@@ -5,7 +5,8 @@
   atomic). The file gets the mode a plain ``open(path, "w")`` would give (0666 less the umask).
 - ``swap_dir_in``: a finished folder replaces the previous one, which is removed only afterwards.
 - ``open_permissions``: files made through ``tempfile`` are private (0600, folders 0700); an output
-  meant to be shared (an export, an index) gets the umask's modes instead before it is swapped in.
+  meant to be shared (an export, an index) gets the umask's modes instead before it is swapped in
+  (``publish_dir`` does both).
 - ``check_output_dir``: an ``--out`` folder may be new, empty, or an earlier output of the same kind
   (recognised by its marker file); anything else is refused before work starts.
 """
@@ -68,6 +69,13 @@ def open_permissions(root: Path) -> None:
     os.umask(umask)
     for path in [root, *root.rglob("*")]:
         path.chmod((0o777 if path.is_dir() else 0o666) & ~umask)
+
+
+def publish_dir(temp: Path, final: Path) -> None:
+    """Put a finished output folder (export, index) in place of ``final``, readable by others: the
+    folder was made private by ``tempfile``, and a previous one is replaced only now it is complete."""
+    open_permissions(temp)
+    swap_dir_in(temp, final)
 
 
 def check_output_dir(out: Path, marker: str, what: str) -> None:

@@ -38,7 +38,7 @@ from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 
 from .. import __version__
 from .. import artifacts as A
-from ..fileio import check_output_dir, open_permissions, swap_dir_in, write_json_atomic, write_text_atomic
+from ..fileio import check_output_dir, publish_dir, write_json_atomic, write_text_atomic
 from ..recipe import Recipe
 from ..run import RunDir
 from ..text import TextKind, TextTower, text_kind
@@ -98,8 +98,7 @@ def export_run(run_dir: str | Path, out: str | Path, *, checkpoint: str | Path |
             info["export_seconds"] = round(time.perf_counter() - started, 2)
             write_json_atomic(temp / A.EXPORT_INFO, info)
             progress.update(task, completed=len(steps))
-        open_permissions(temp)  # temporary folders are private; an export is meant to be shared
-        swap_dir_in(temp, out)  # a previous export is replaced only once the new one is complete
+        publish_dir(temp, out)
     except BaseException:
         shutil.rmtree(temp, ignore_errors=True)
         raise

@@ -23,7 +23,7 @@ from rich.console import Console
 from .. import artifacts as A
 from ..api import AlignedModel, load, read_export
 from ..errors import AlignError, DataError
-from ..fileio import check_output_dir, open_permissions, swap_dir_in, write_json_atomic
+from ..fileio import check_output_dir, publish_dir, write_json_atomic
 from .adopt import ADOPT_SAMPLE, ROW_BLOCK, adopt_embeddings, refuse_bad_rows
 from .ann import build_approximate, save_approximate
 from .filters import LabelTable
@@ -163,8 +163,7 @@ def build_index(export_dir: str | Path, source: str | Path, out: str | Path, *, 
             (temp / A.INDEX_KEYS).unlink()
         info["seconds"] = round(time.perf_counter() - started, 2)
         write_json_atomic(temp / A.INDEX_INFO, info)
-        open_permissions(temp)  # temporary files are private; an index is meant to be shared
-        swap_dir_in(temp, out)
+        publish_dir(temp, out)
     except BaseException:
         shutil.rmtree(temp, ignore_errors=True)
         raise
