@@ -177,17 +177,19 @@ class RunDir:
 
     def log_records(self) -> list[dict]:
         """The training log's records (a line torn by a kill is skipped)."""
+        return [record for _, record in self._log_lines() if "step" in record]
+
+    def _log_lines(self):
+        """(line, record) for each readable line of the training log; a line torn by a kill is skipped."""
         if not self.metrics_log.is_file():
-            return []
-        records = []
+            return
         for line in self.metrics_log.read_text(encoding="utf-8").splitlines():
             try:
                 record = json.loads(line)
             except json.JSONDecodeError:
                 continue
-            if isinstance(record, dict) and "step" in record:
-                records.append(record)
-        return records
+            if isinstance(record, dict):
+                yield line, record
 
     def best_checkpoint(self, recipe: Recipe | None = None) -> tuple[Path, int, float] | None:
         """(checkpoint, step, value) of the best logged validation by ``train.keep_best`` among the
@@ -292,12 +294,5 @@ class RunDir:
         empties the log: a fresh start owns no earlier line."""
         if not self.metrics_log.is_file():
             return
-        kept = []
-        for line in self.metrics_log.read_text(encoding="utf-8").splitlines():
-            try:
-                record = json.loads(line)
-            except json.JSONDecodeError:
-                continue
-            if isinstance(record, dict) and record.get("step", 0) <= after_step:
-                kept.append(line)
+        kept = [line for line, record in self._log_lines() if record.get("step", 0) <= after_step]
         write_text_atomic(self.metrics_log, "".join(line + "\n" for line in kept))

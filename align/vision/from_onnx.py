@@ -18,8 +18,7 @@ from ..errors import AlignError
 from ..recipe import VisionConfig
 from .declared import PREPROCESSING_RULE, declared_preprocessing, eval_transform
 from .identity import FILES_RULE, file_sha256, files_sha256
-from .pooling import RULES, check_output_rank, pool_output
-from .tower import FrozenImageTower
+from .pooling import PooledGraphTower, RULES, check_output_rank, pool_output
 
 _NUMPY_TYPES = {"tensor(float)": np.float32, "tensor(float16)": np.float16, "tensor(double)": np.float64}
 
@@ -107,15 +106,8 @@ class OnnxSession:
         return worst
 
 
-class OnnxTower(FrozenImageTower):
+class OnnxTower(PooledGraphTower):
     source = "onnx"
-
-    def __init__(self, *, pooling_choice: str, **kwargs):
-        super().__init__(**kwargs)
-        self.pooling_choice = pooling_choice
-
-    def _forward(self, pixels: torch.Tensor) -> torch.Tensor:
-        return pool_output(self.model(pixels), self.pooling_choice)
 
     def activation_elements(self, side: int) -> int:
         return self.model.activation_elements()

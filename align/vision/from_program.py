@@ -18,8 +18,7 @@ from ..errors import AlignError
 from ..recipe import VisionConfig
 from .declared import PREPROCESSING_RULE, declared_preprocessing, eval_transform
 from .identity import FILES_RULE, WEIGHTS_RULE, file_sha256, files_sha256, weights_sha256
-from .pooling import RULES, check_output_rank, pool_output
-from .tower import FrozenImageTower
+from .pooling import PooledGraphTower, RULES, check_output_rank, pool_output
 
 EXPORTED, TORCHSCRIPT = "torch.export program", "TorchScript module"
 
@@ -63,15 +62,8 @@ def load_program(path: Path) -> tuple[torch.nn.Module, str, tuple[int, int] | No
     return module, TORCHSCRIPT, None
 
 
-class ProgramTower(FrozenImageTower):
+class ProgramTower(PooledGraphTower):
     source = "program"
-
-    def __init__(self, *, pooling_choice: str, **kwargs):
-        super().__init__(**kwargs)
-        self.pooling_choice = pooling_choice
-
-    def _forward(self, pixels: torch.Tensor) -> torch.Tensor:
-        return pool_output(self.model(pixels), self.pooling_choice)
 
     def recipe_keys(self) -> dict:
         pre = self.preprocessing

@@ -9,6 +9,7 @@ from __future__ import annotations
 import torch
 
 from ..errors import AlignError
+from .tower import FrozenImageTower
 
 RULES = {
     "output": "the graph's output as it is, (B, D)",
@@ -36,3 +37,14 @@ def pool_output(out: torch.Tensor, pooling: str) -> torch.Tensor:
     if pooling == "cls":
         return out[:, 0]
     return out.mean(dim=1) if out.dim() == 3 else out.mean(dim=(2, 3))
+
+
+class PooledGraphTower(FrozenImageTower):
+    """A tower whose graph (onnx, program) returns raw output that the recipe's pooling reduces."""
+
+    def __init__(self, *, pooling_choice: str, **kwargs):
+        super().__init__(**kwargs)
+        self.pooling_choice = pooling_choice
+
+    def _forward(self, pixels: torch.Tensor) -> torch.Tensor:
+        return pool_output(self.model(pixels), self.pooling_choice)
