@@ -20,6 +20,7 @@ from torchmetrics.functional.retrieval import retrieval_hit_rate, retrieval_reca
 from torchmetrics.retrieval import RetrievalHitRate, RetrievalRecall
 
 from align.metrics import (
+    bootstrap_recall_intervals,
     class_text_embeddings,
     display_name,
     first_hit_ranks,
@@ -28,6 +29,7 @@ from align.metrics import (
     linear_probe_accuracy,
     recall_at_k,
     retrieval_metrics,
+    retrieval_ranks,
     retrieval_results,
     score_recall,
     zero_shot_accuracy,
@@ -222,6 +224,105 @@ def test_retrieval_with_labels_and_blocks_matches_reference():
     pair_only = retrieval_metrics(text, image, pairs, None, ks)
     assert pair_only == pytest.approx(_reference_retrieval(text, image, pairs, [None] * m, ks), abs=1e-9)
     assert full["text_to_image_recall@1"] >= pair_only["text_to_image_recall@1"]
+
+
+def _tied_rows(rng: np.random.Generator, n: int) -> np.ndarray:
+    """Unit rows with entries ±0.5 in 4-d: every dot product is a multiple of 1/4, exact in any
+    summation order, so scores tie often and a block's product equals the whole matrix's bit for bit."""
+    return (rng.integers(0, 2, (n, 4)) - 0.5).astype(np.float32)
+
+
+def _reference_ranks_both_ways(text, image, pairs, image_labels):
+    """Full-matrix numpy reference ranks (stable descending sort: ties by index), both directions."""
+    caption_labels = [image_labels[p] for p in pairs]
+    t2i = np.array([[pairs[i] == j or (caption_labels[i] is not None and caption_labels[i] == image_labels[j])
+                     for j in range(len(image))] for i in range(len(text))])
+    return {"text_to_image": _reference_ranks(text @ image.T, t2i),
+            "image_to_text": _reference_ranks(image @ text.T, t2i.T)}
+
+
+@pytest.mark.parametrize("query_block,gallery_block", [(1, 1), (3, 5), (7, 2), (16, 29), (29, 16), (100, 4)])
+def test_blocked_ranks_equal_the_whole_matrix_with_ties(query_block, gallery_block):
+    rng = np.random.default_rng(12)
+    m = 29
+    image = _tied_rows(rng, m)
+    pairs = rng.integers(0, m - 2, 37)                      # two images without a caption
+    text = _tied_rows(rng, 37)
+    image_labels = [None if j % 5 == 0 else json.dumps({"pattern": ["chevron", "terrazzo"][j % 2]})
+                    for j in range(m)]
+    for labels in (image_labels, None):
+        reference = _reference_ranks_both_ways(text, image, pairs, labels or [None] * m)
+        scores = text @ image.T
+        assert (np.sort(scores, axis=1)[:, 1:] == np.sort(scores, axis=1)[:, :-1]).any()  # ties present
+        blocked = retrieval_ranks(text, image, pairs, labels, query_block=query_block, gallery_block=gallery_block)
+        for direction in ("text_to_image", "image_to_text"):
+            # reference: numpy's stable argsort of the whole (Q, G) score matrix, first hit's position
+            np.testing.assert_array_equal(blocked[direction], reference[direction])
+
+
+def test_blocked_recall_equals_torchmetrics_on_continuous_scores():
+    rng = np.random.default_rng(13)
+    text, image = _unit_rows(rng, 50, 8), _unit_rows(rng, 50, 8)
+    metrics = retrieval_metrics(text, image, None, ks=KS, query_block=6, gallery_block=11)
+    for k in KS:
+        # torchmetrics RetrievalHitRate over the whole (50, 50) matrix, one relevant item per query
+        for name, scores in (("text_to_image", text @ image.T), ("image_to_text", image @ text.T)):
+            metric = RetrievalHitRate(top_k=k)
+            metric.update(torch.from_numpy(scores).flatten(), torch.eye(50, dtype=torch.bool).flatten(),
+                          indexes=torch.arange(50).repeat_interleave(50))
+            assert metrics[f"{name}_recall@{k}"] == pytest.approx(float(metric.compute()), abs=1e-6)
+
+
+def test_blocked_ranks_read_a_float16_memory_map(tmp_path):
+    # a gallery left on disk as float16 rows is read a block at a time; equals the float32 copy
+    rng = np.random.default_rng(14)
+    image = _unit_rows(rng, 40, 8).astype(np.float16)
+    mapped = np.memmap(tmp_path / "rows.f16", dtype=np.float16, mode="w+", shape=image.shape)
+    mapped[:] = image
+    text = _unit_rows(rng, 40, 8)
+    direct = retrieval_ranks(text, image.astype(np.float32), None, query_block=9)
+    from_map = retrieval_ranks(text, np.memmap(tmp_path / "rows.f16", dtype=np.float16, mode="r", shape=image.shape),
+                               None, query_block=9)
+    for direction in direct:
+        np.testing.assert_array_equal(from_map[direction], direct[direction])
+
+
+def test_faiss_ranks_equal_exact_on_continuous_scores():
+    rng = np.random.default_rng(15)
+    m = 120
+    image = _unit_rows(rng, m, 16)
+    pairs = rng.integers(0, m - 4, 150)
+    text = image[pairs] + 0.8 * rng.standard_normal((150, 16)).astype(np.float32)
+    text /= np.linalg.norm(text, axis=1, keepdims=True)
+    image_labels = [None if j % 4 == 0 else json.dumps({"glaze": str(j % 7)}) for j in range(m)]
+    for labels in (image_labels, None):
+        exact = retrieval_ranks(text, image, pairs, labels, query_block=32)
+        deep = retrieval_ranks(text, image, pairs, labels, query_block=32, method="faiss", depth=10)
+        for direction in exact:
+            # reference: the exact blocked path (itself checked against numpy's stable sort above);
+            # faiss knows ranks only down to its depth, deeper ones read as the depth
+            np.testing.assert_array_equal(deep[direction], np.where(exact[direction] >= 10, 10, exact[direction]))
+        assert (exact["image_to_text"] == -1).any()   # uncaptioned, unlabelled images: skipped on both paths
+        assert retrieval_metrics(text, image, pairs, labels, KS, method="faiss") == \
+            retrieval_metrics(text, image, pairs, labels, KS)
+    with pytest.raises(ValueError, match="depth"):
+        retrieval_ranks(text, image, pairs, method="faiss")
+    with pytest.raises(ValueError, match="exact, faiss"):
+        retrieval_ranks(text, image, pairs, method="annoy")
+
+
+def test_bootstrap_drawn_in_pieces_equals_one_draw(monkeypatch):
+    import align.metrics.intervals as intervals
+
+    ranks = np.random.default_rng(16).integers(-1, 30, 301)
+    valid = ranks[ranks >= 0]
+    monkeypatch.setattr(intervals, "DRAW_ELEMENTS", 3 * valid.size + 1)   # three resamples per draw
+    pieces = bootstrap_recall_intervals(ranks, [1, 5], resamples=100, seed=3)
+    # reference: numpy's generator drawing all (100, n) indices at once, the percentile interval
+    draws = np.random.default_rng(3).integers(0, valid.size, (100, valid.size))
+    for k in (1, 5):
+        low, high = np.quantile((valid[draws] < k).mean(axis=1), [0.025, 0.975])
+        assert pieces[k] == pytest.approx((float(low), float(high)), abs=1e-12)   # the mean's summation order aside
 
 
 def test_retrieval_rejects_bad_input():
