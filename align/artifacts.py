@@ -5,6 +5,10 @@ MANIFEST = "manifest.json"
 REJECTED = "rejected.jsonl"
 FAILED_PACK_REJECTED = "rejected-of-failed-pack.jsonl"  # a pack that packed nothing reports here, beside the old pack
 PACK_STAGING = ".pack.partial"  # a pack in progress; moved into place only when it succeeds
+PACK_PROGRESS = "progress.json"  # inside PACK_STAGING: what the finished shards cover (for a resumed pack)
+PACK_RECORDS = "content-records.txt"  # inside PACK_STAGING: the content hash's lines so far, per split
+PACK_SORT_RUNS = "sorting"  # inside PACK_STAGING: the listing's sorted runs (a large source only)
+PACK_OPEN_SHARD = "{name}.partial"  # inside PACK_STAGING: a shard still being written
 SHARD_PATTERN = "{split}-{index:06d}.tar"
 SPLITS = ("train", "val")
 

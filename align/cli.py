@@ -29,7 +29,7 @@ def cmd_pack(args) -> int:
                             else None, args.key_column, args.vector_column, args.vector_dim) if args.vectors else None)
     pack_source(args.source, args.out, val_fraction=args.val_fraction, shard_size=args.shard_size,
                 max_caption_chars=args.max_caption_chars, image_roots=args.image_root, console=console,
-                vectors=vectors)
+                vectors=vectors, workers=args.workers)
     return 0
 
 
@@ -190,6 +190,9 @@ def _add_pack_command(sub) -> None:
     p.add_argument("--val-fraction", type=float, default=0.1, help="share of samples in the val split (by key hash)")
     p.add_argument("--shard-size", type=int, default=1000, help="samples per tar shard")
     p.add_argument("--max-caption-chars", type=int, default=1000, help="longer captions are rejected")
+    p.add_argument("--workers", type=int, default=1, help="processes that check and encode samples (the output "
+                                                          "is the same for any number; an interrupted pack "
+                                                          "resumes from its finished shards)")
     p.add_argument("--image-root", action="append", default=[], metavar="DIR",
                    help="a folder whose images a CSV/JSONL may name besides its own folder (repeatable); "
                         "without it, rows naming images elsewhere are refused")

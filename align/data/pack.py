@@ -1,14 +1,19 @@
 """Pack a folder, CSV or JSONL of image-caption pairs into webdataset tar shards.
 
-Every sample is checked before it is written: the image must decode completely (to the pixels the
-tower will see), the caption must be UTF-8, non-empty and not too long, labels must be a flat JSON
-object of finite values. A bad sample is skipped and listed in ``rejected.jsonl`` with its reason;
-it never stops the pack.
+Every sample is checked before it is written (``pack_check.py``). A bad sample is skipped and
+listed in ``rejected.jsonl`` with its reason; it never stops the pack.
+
+Samples are written in key order (``pack_order.py``: the listing is sorted in runs on disk, so
+memory does not grow with the source). ``workers`` > 1 checks and encodes samples in that many
+processes (``pack_workers.py``) while this one appends their bytes in order: the shards, manifest,
+``rejected.jsonl`` and content hash are byte-identical whatever the number of workers.
 
 Nothing valid is lost: the new pack is written into a staging folder inside OUT and moved into
 place only when it succeeded, ``manifest.json`` last, so a folder that has one is complete. A pack
-that packs nothing leaves an earlier pack in OUT as it was and writes its report to
-``rejected-of-failed-pack.jsonl`` beside it. Other files in OUT (the feature cache) are kept.
+that is killed leaves its finished shards there; the same command run again resumes from them
+(``pack_stage.py``) and ends with the pack an uninterrupted run gives. A pack that packs nothing
+leaves an earlier pack in OUT as it was and writes its report to ``rejected-of-failed-pack.jsonl``
+beside it. Other files in OUT (the feature cache) are kept.
 
 Reject reasons: ``unreadable_image``, ``missing_image``, ``image_too_large`` (the header claims more
 pixels than Pillow's ``MAX_IMAGE_PIXELS``), ``unsupported_pixels`` (32-bit integer or floating-point
@@ -24,272 +29,97 @@ null values are dropped), so evaluation can compare label values without caring 
 from __future__ import annotations
 
 import hashlib
-import io
 import json
-import math
 import os
-import re
 import shutil
-import tarfile
 from collections import Counter
-from dataclasses import dataclass, field
 from pathlib import Path
 
-import numpy as np
-from PIL import Image, ImageFile
 from rich.console import Console
-from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, ProgressColumn, TextColumn, TimeRemainingColumn
 from rich.table import Table
+from rich.text import Text
 
-from ..artifacts import FAILED_PACK_REJECTED, MANIFEST, PACK_STAGING, REJECTED, SHARD_PATTERN, SPLITS
+from ..artifacts import FAILED_PACK_REJECTED, MANIFEST, PACK_SORT_RUNS, REJECTED, SPLITS
 from ..errors import DataError
 from ..fileio import write_text_atomic
-from ..labels import canonical_labels
-from .pixels import ImageTooLarge, UnsupportedPixels, open_image, to_rgb8
-from .sources import Candidate, Reject, decode_utf8, list_source
-from .vectors import StoredVectors, VectorSource, replace_stored_entries
+from .pack_check import Refused, split_of
+from .pack_order import OrderedListing, blocks_of
+from .pack_stage import StagedPack, commit, held, open_stage
+from .pack_workers import block_size_for, checked_blocks
+from .sources import Candidate, Reject, iter_source
+from .vectors import StoredVectors, VectorSource
 
 FORMAT_VERSION = 1
-# JPEG and PNG bytes are stored untouched (no generation loss); anything else becomes PNG
-KEPT_FORMATS = {"JPEG": "jpg", "PNG": "png"}
-PNG_MODES = {"1", "L", "LA", "I;16", "P", "RGB", "RGBA"}
-_SHARD_NAME = re.compile(r"^(%s)-\d{6}\.tar$" % "|".join(SPLITS))
 
 
-@dataclass
-class _Sample:
-    key: str
-    image: bytes
-    ext: str
-    caption: str
-    labels_json: str
+class _Rate(ProgressColumn):
+    def render(self, task) -> Text:
+        speed = task.finished_speed or task.speed
+        return Text(f"{speed:,.0f} samples/s" if speed else "… samples/s")
 
 
-def split_of(key: str, val_fraction: float) -> str:
-    """Deterministic split by key hash, so a sample keeps its split when others are added."""
-    bucket = int(hashlib.sha256(key.encode("utf-8")).hexdigest()[:8], 16) / 2**32  # in [0, 1)
-    return "val" if bucket < val_fraction else "train"
+def _progress(console: Console) -> Progress:
+    return Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), _Rate(),
+                    TimeRemainingColumn(), console=console, transient=True)
 
 
 # ---------------------------------------------------------------------------------------------
-# checking one sample
+# writing, in key order
 
 
-def _label_value(name: str, value):
-    """Labels are strings; JSON scalars keep their JSON spelling, nested values are refused."""
-    if isinstance(value, str):
-        return value
-    if isinstance(value, float) and not math.isfinite(value):
-        # Python's json reads NaN and Infinity, but they are no JSON numbers and equal nothing
-        raise Reject("bad_labels", f"label {name!r} is {value!r}, not a finite number")
-    if isinstance(value, (bool, int, float)):
-        return json.dumps(value)
-    raise Reject("bad_labels", f"label values must be scalars, got {type(value).__name__} for {name!r}")
-
-
-def _normalise_labels(raw) -> dict:
-    if not isinstance(raw, dict):
-        raise Reject("bad_labels", f"labels must be a JSON object, got {type(raw).__name__}")
-    return {str(k): _label_value(str(k), v) for k, v in raw.items() if v is not None}
-
-
-def _read_bytes(path: Path, reason: str) -> bytes:
-    try:
-        return path.read_bytes()
-    except OSError as exc:
-        raise Reject(reason, f"cannot read {path}: {exc.strerror or exc}") from None
-
-
-def _stored_image(image: Image.Image, data: bytes) -> tuple[bytes, str]:
-    """The bytes to store: JPEG and PNG as they are, anything else re-encoded losslessly as PNG."""
-    if image.format in KEPT_FORMATS:
-        return data, KEPT_FORMATS[image.format]
-    if image.mode.startswith("I;16") and image.mode != "I;16":
-        image = Image.fromarray(np.asarray(image).astype(np.uint16))  # 16-bit kept, in PNG's own mode
-    elif image.mode not in PNG_MODES:
-        image = image.convert("RGBA" if "A" in image.getbands() else "RGB")
-    buffer = io.BytesIO()
-    image.save(buffer, format="PNG")
-    return buffer.getvalue(), "png"
-
-
-def _read_image(path: Path | None) -> tuple[bytes, str]:
-    """The bytes to store and their extension; raises Reject unless the image decodes fully."""
-    if path is None or not path.is_file():
-        raise Reject("missing_image", f"no file at {path}")
-    data = _read_bytes(path, "unreadable_image")
-    truncated_ok = ImageFile.LOAD_TRUNCATED_IMAGES
-    ImageFile.LOAD_TRUNCATED_IMAGES = False  # a truncated file must fail here, not later in training
-    try:
-        with open_image(data) as image:  # the size check comes before any pixel is decoded
-            image.verify()  # structure and checksums (PNG); cheap
-        with open_image(data) as image:
-            image.load()  # every pixel: catches truncated JPEGs that verify() lets through
-            to_rgb8(image, image.format)  # what the tower will see must exist too
-            return _stored_image(image, data)
-    except ImageTooLarge as exc:
-        raise Reject("image_too_large", str(exc)) from None
-    except UnsupportedPixels as exc:
-        raise Reject("unsupported_pixels", f"{exc}; save it with 8- or 16-bit samples") from None
-    except Exception as exc:  # PIL raises many types (OSError, SyntaxError, ValueError, ...)
-        raise Reject("unreadable_image", f"{type(exc).__name__}: {exc}") from None
-    finally:
-        ImageFile.LOAD_TRUNCATED_IMAGES = truncated_ok
-
-
-def _caption_of(candidate: Candidate, max_chars: int) -> str:
-    if candidate.caption_path is not None:
-        if not candidate.caption_path.is_file():
-            raise Reject("missing_caption", f"no caption file {candidate.caption_path.name}")
-        text = decode_utf8(_read_bytes(candidate.caption_path, "missing_caption"), "caption")
-    elif candidate.caption is None:
-        raise Reject("missing_caption", "the row has no caption")
-    else:
-        text = candidate.caption
-    text = text.strip()
-    if not text:
-        raise Reject("empty_caption", "the caption is empty")
-    if len(text) > max_chars:
-        raise Reject("caption_too_long", f"{len(text)} characters > max_caption_chars={max_chars}")
-    return text
-
-
-def _labels_of(candidate: Candidate) -> dict:
-    if candidate.labels_path is not None:
-        if not candidate.labels_path.is_file():
-            return {}
-        text = decode_utf8(_read_bytes(candidate.labels_path, "bad_labels"), "labels")
+def _take(staged: StagedPack, candidate: Candidate, outcome, val_fraction: float,
+          vectors: StoredVectors | None) -> None:
+    """One candidate's outcome into the stage. A key is only taken by a sample that was packed; a
+    rejected first copy frees it. Equal keys are neighbours in key order, so the last packed key is
+    the only one a candidate can repeat."""
+    if candidate.key == staged.last_key:
+        staged.reject(candidate, "duplicate_key", f"key {candidate.key!r} is already used by another sample")
+        return
+    if isinstance(outcome, Refused):
+        staged.reject(candidate, outcome.reason, outcome.detail)
+        return
+    if vectors is not None:
         try:
-            raw = json.loads(text)
-        except json.JSONDecodeError as exc:
-            raise Reject("bad_labels", f"not JSON: {exc}") from None
-        return _normalise_labels(raw)
-    return _normalise_labels(candidate.labels or {})
+            vectors.check(outcome.key)
+        except Reject as rej:
+            staged.reject(candidate, rej.reason, rej.detail)
+            return
+    split = split_of(outcome.key, val_fraction)
+    staged.add(outcome, split)
+    if vectors is not None:
+        vectors.take(outcome.key, split)
 
 
-def check_sample(candidate: Candidate, max_chars: int, image_optional: bool = False) -> _Sample:
-    """Read and validate one sample (cheap checks first); raises Reject. ``image_optional``: a row
-    without an image is packed (its stored vector stands in for it)."""
-    textual = image_optional and candidate.image_path is None and (candidate.problem or ("",))[0] == "missing_image"
-    if candidate.problem and not textual:
-        raise Reject(*candidate.problem)
-    caption = _caption_of(candidate, max_chars)
-    labels = _labels_of(candidate)
-    image, ext = (b"", "") if textual else _read_image(candidate.image_path)
-    return _Sample(candidate.key, image, ext, caption, canonical_labels(labels))
+def _write_samples(listing: OrderedListing, staged: StagedPack, *, workers: int, val_fraction: float,
+                   max_caption_chars: int, vectors: StoredVectors | None, console: Console) -> None:
+    if vectors is not None:
+        for split, key in staged.replayed:  # the samples of the shards a resumed pack keeps
+            vectors.take(key, split)
+    remaining = listing.count - staged.resumed_at
+    blocks = blocks_of(listing.ordered(skip=staged.resumed_at), block_size_for(remaining, workers))
+    with _progress(console) as progress:
+        task = progress.add_task("packing", total=listing.count, completed=staged.resumed_at)
+        for block, outcomes in checked_blocks(blocks, workers=workers, max_chars=max_caption_chars,
+                                              image_optional=vectors is not None):
+            for candidate, outcome in zip(block, outcomes):
+                _take(staged, candidate, outcome, val_fraction, vectors)
+            progress.advance(task, len(block))
+    staged.finish(vectors.unmatched(listing.keys) if vectors is not None else [])
 
 
-# ---------------------------------------------------------------------------------------------
-# writing into the staging folder
-
-
-class _ContentHash:
-    """sha256 over (key, sha256(image), caption, canonical labels) records, fed in key order."""
-
-    def __init__(self):
-        self._hash = hashlib.sha256()
-
-    def add(self, sample: _Sample) -> None:
-        record = [sample.key, hashlib.sha256(sample.image).hexdigest(), sample.caption, sample.labels_json]
-        self._hash.update(json.dumps(record, ensure_ascii=False).encode("utf-8") + b"\n")
-
-    def hexdigest(self) -> str:
-        return self._hash.hexdigest()
-
-
-class _SplitWriter:
-    """Writes one split's shards into the staging folder, ``shard_size`` samples each."""
-
-    def __init__(self, stage: Path, split: str, shard_size: int):
-        self.stage, self.split, self.shard_size = stage, split, shard_size
-        self.shards: list[str] = []
-        self.samples = 0
-        self.hash = _ContentHash()
-        self._tar: tarfile.TarFile | None = None
-        self._in_shard = 0
-
-    def _open_next(self) -> None:
-        self.finish()
-        name = SHARD_PATTERN.format(split=self.split, index=len(self.shards))
-        self._tar = tarfile.open(self.stage / name, "w", format=tarfile.PAX_FORMAT)
-        self.shards.append(name)
-        self._in_shard = 0
-
-    def write(self, sample: _Sample) -> None:
-        if self._tar is None or self._in_shard >= self.shard_size:
-            self._open_next()
-        members = {sample.ext: sample.image, "txt": sample.caption.encode("utf-8"),
-                   "json": sample.labels_json.encode("utf-8")}
-        members.pop("", None)  # a caption-and-vector sample has no image member
-        # one sample's members sit next to each other (webdataset groups consecutive names by key)
-        for ext in sorted(members):
-            info = tarfile.TarInfo(f"{sample.key}.{ext}")
-            info.size = len(members[ext])
-            # fixed mtime/owner/mode: packing the same data twice gives byte-identical shards
-            info.mtime, info.mode, info.uname, info.gname = 0, 0o444, "align", "align"
-            self._tar.addfile(info, io.BytesIO(members[ext]))
-        self._in_shard += 1
-        self.samples += 1
-        self.hash.add(sample)
-
-    def finish(self) -> None:
-        if self._tar is not None:
-            self._tar.close()
-            self._tar = None
-
-
-@dataclass
-class _Packed:
-    """What one pass over the candidates wrote into the staging folder."""
-    writers: dict[str, _SplitWriter]
-    overall: _ContentHash = field(default_factory=_ContentHash)
-    rejects: list[dict] = field(default_factory=list)
-    keys: set[str] = field(default_factory=set)
-    label_fields: set[str] = field(default_factory=set)
-
-
-def _write_samples(candidates: list[Candidate], stage: Path, *, val_fraction: float, shard_size: int,
-                   max_caption_chars: int, console: Console, vectors: StoredVectors | None = None) -> _Packed:
-    packed = _Packed({split: _SplitWriter(stage, split, shard_size) for split in SPLITS})
-    with Progress(TextColumn("packing"), BarColumn(), MofNCompleteColumn(), TimeRemainingColumn(),
-                  console=console, transient=True) as progress:
-        task = progress.add_task("packing", total=len(candidates))
-        for candidate in candidates:
-            progress.advance(task)
-            try:
-                # a key is only taken by a sample that was packed; a rejected first copy frees it
-                if candidate.key in packed.keys:
-                    raise Reject("duplicate_key", f"key {candidate.key!r} is already used by another sample")
-                sample = check_sample(candidate, max_caption_chars, image_optional=vectors is not None)
-                if vectors is not None:
-                    vectors.check(sample.key)
-            except Reject as rej:
-                packed.rejects.append({"source": candidate.source, "key": candidate.key,
-                                       "reason": rej.reason, "detail": rej.detail})
-                continue
-            packed.keys.add(sample.key)
-            packed.label_fields.update(json.loads(sample.labels_json))
-            packed.writers[split_of(sample.key, val_fraction)].write(sample)
-            packed.overall.add(sample)
-            if vectors is not None:
-                vectors.take(sample.key, split_of(sample.key, val_fraction))
-    for writer in packed.writers.values():
-        writer.finish()
-    packed.rejects += vectors.unmatched({c.key for c in candidates}) if vectors is not None else []
-    return packed
-
-
-def _manifest(source: Path, candidates: list[Candidate], packed: _Packed, val_fraction: float) -> dict:
-    by_reason = Counter(r["reason"] for r in packed.rejects)
+def _manifest(source: Path, listing: OrderedListing, staged: StagedPack, val_fraction: float) -> dict:
+    by_reason = staged.rejected_by_reason()
+    splits = staged.progress["splits"]
     return {
         "format_version": FORMAT_VERSION,
         "source": str(source.resolve()),
-        "counts": {"seen": len(candidates), "packed": len(packed.keys), "rejected": len(packed.rejects),
-                   "rejected_by_reason": dict(sorted(by_reason.items()))},
-        "splits": {split: {"samples": w.samples, "shards": list(w.shards), "content_hash": w.hash.hexdigest()}
-                   for split, w in packed.writers.items()},
-        "label_fields": sorted(packed.label_fields),
-        "content_hash": packed.overall.hexdigest(),
+        "counts": {"seen": listing.count, "packed": staged.progress["packed"], "rejected": sum(by_reason.values()),
+                   "rejected_by_reason": by_reason},
+        "splits": {split: {"samples": splits[split]["samples"], "shards": list(splits[split]["shards"]),
+                           "content_hash": staged.split_hashes[split].hexdigest()} for split in SPLITS},
+        "label_fields": sorted(staged.label_fields),
+        "content_hash": staged.overall_hash.hexdigest(),
         "val_fraction": val_fraction,
     }
 
@@ -298,50 +128,13 @@ def _manifest(source: Path, candidates: list[Candidate], packed: _Packed, val_fr
 # the output folder
 
 
-def _rejects_text(rejects: list[dict]) -> str:
-    return "".join(json.dumps(r, ensure_ascii=False) + "\n" for r in rejects)
-
-
-def _staging(out: Path) -> Path:
-    """A fresh staging folder inside OUT (same file system, so moving files out of it is a rename)."""
-    if out.exists() and not out.is_dir():
-        raise DataError(f"--out {out} is a file", hint="pass a folder path (it is created if missing)")
-    stage = out / PACK_STAGING
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-        if stage.exists():
-            shutil.rmtree(stage)  # left by a pack that was killed
-        stage.mkdir()
-    except OSError as exc:
-        raise DataError(f"cannot write into --out {out}: {exc.strerror or exc}",
-                        hint="pass a folder you can write to") from None
-    return stage
-
-
-def _commit(stage: Path, out: Path, shards: list[str]) -> None:
-    """Move the finished pack from STAGE into OUT. The old manifest goes first: for the few renames
-    until the new one lands, readers refuse the folder instead of mixing two packs."""
-    (out / MANIFEST).unlink(missing_ok=True)
-    for name in shards:
-        os.replace(stage / name, out / name)
-    for path in out.iterdir():  # shards of an earlier, larger pack would otherwise look current
-        if _SHARD_NAME.match(path.name) and path.name not in shards:
-            path.unlink()
-    os.replace(stage / REJECTED, out / REJECTED)
-    replace_stored_entries(stage, out)  # stored vectors: this pack's, or none
-    (out / FAILED_PACK_REJECTED).unlink(missing_ok=True)  # it spoke of an attempt this pack replaces
-    os.replace(stage / MANIFEST, out / MANIFEST)
-    stage.rmdir()
-
-
-def _refuse_empty(source: Path, out: Path, candidates: list[Candidate], rejects: list[dict]) -> None:
+def _refuse_empty(source: Path, out: Path, seen: int, rejects_text: str) -> None:
     """Nothing packed: report why, beside whatever OUT already holds, which stays as it was."""
     report = out / FAILED_PACK_REJECTED
-    write_text_atomic(report, _rejects_text(rejects))
-    by_reason = Counter(r["reason"] for r in rejects)
+    write_text_atomic(report, rejects_text)
+    by_reason = Counter(json.loads(line)["reason"] for line in rejects_text.splitlines())
     kept = " (the pack already there is unchanged)" if (out / MANIFEST).is_file() else ""
-    raise DataError(f"nothing usable in {source}: {len(candidates)} samples seen, all rejected; "
-                    f"see {report}{kept}",
+    raise DataError(f"nothing usable in {source}: {seen} samples seen, all rejected; see {report}{kept}",
                     hint="fix the samples for these reasons and pack again: "
                          + ", ".join(f"{k} x{v}" for k, v in sorted(by_reason.items())))
 
@@ -361,7 +154,7 @@ def _summary(console: Console, manifest: dict, rejected_path: Path) -> None:
         console.print(f"rejected samples are listed in {rejected_path}")
 
 
-def _check_options(val_fraction: float, shard_size: int, max_caption_chars: int) -> None:
+def _check_options(val_fraction: float, shard_size: int, max_caption_chars: int, workers: int) -> None:
     if not 0.0 <= val_fraction <= 1.0:  # also refuses NaN, which fails every comparison
         raise DataError(f"val_fraction must be between 0 and 1, got {val_fraction}",
                         hint="use 0.1 to hold out about a tenth, 1.0 for an evaluation-only set")
@@ -370,47 +163,106 @@ def _check_options(val_fraction: float, shard_size: int, max_caption_chars: int)
     if max_caption_chars < 1:
         raise DataError(f"max_caption_chars must be at least 1, got {max_caption_chars}",
                         hint="use e.g. --max-caption-chars 1000")
+    if workers < 1:
+        raise DataError(f"workers must be at least 1, got {workers}",
+                        hint=f"use e.g. --workers {os.cpu_count() or 1} (one per core)")
 
 
-def _pack_into(stage: Path, source: Path, candidates: list[Candidate], out: Path, *, val_fraction: float,
-               shard_size: int, max_caption_chars: int, console: Console, vectors: StoredVectors | None) -> dict:
-    """Shards, ``rejected.jsonl`` and ``manifest.json`` in STAGE; OUT is not touched (but for the report
-    of a pack that packed nothing)."""
-    try:
-        packed = _write_samples(candidates, stage, val_fraction=val_fraction, shard_size=shard_size,
-                                max_caption_chars=max_caption_chars, console=console, vectors=vectors)
-        if not packed.keys:
-            _refuse_empty(source, out, candidates, packed.rejects)
-        manifest = _manifest(source, candidates, packed, val_fraction)
-        if vectors is not None:
-            manifest["vectors"] = vectors.write_entries(stage, manifest["splits"])
-        (stage / REJECTED).write_text(_rejects_text(packed.rejects), encoding="utf-8")
-        (stage / MANIFEST).write_text(json.dumps(manifest, indent=2, ensure_ascii=False) + "\n", encoding="utf-8")
-    except OSError as exc:  # a full disk, a folder that turned read-only
-        raise DataError(f"cannot write the pack into {out}: {exc.strerror or exc}",
-                        hint="free some space or pass another --out; an earlier pack there is unchanged") from None
-    return manifest
+def _file_state(path: Path | None) -> list | None:
+    if path is None or not path.is_file():
+        return None
+    stat = path.stat()
+    return [str(path.resolve()), stat.st_size, stat.st_mtime_ns]
+
+
+def _pack_fingerprint(source: Path, listing: OrderedListing, options: dict, vectors: VectorSource | None) -> str:
+    """What a staged pack's bytes depend on: the listing and every option but the worker count."""
+    stored = None if vectors is None else {
+        "file": _file_state(vectors.path), "keys": _file_state(vectors.keys), "model": vectors.model,
+        "columns": [vectors.key_column, vectors.vector_column], "dim": vectors.dim}
+    record = {"format_version": FORMAT_VERSION, "source": str(source.resolve()),
+              "listing": listing.fingerprint, "options": options, "vectors": stored}
+    return hashlib.sha256(json.dumps(record, sort_keys=True, default=str).encode("utf-8")).hexdigest()
+
+
+def _list(source: Path, stage: Path, image_roots: list[Path], keep_keys: bool, console: Console) -> OrderedListing:
+    """The whole listing, before anything is checked: a bad source packs nothing."""
+    runs = stage / PACK_SORT_RUNS
+    shutil.rmtree(runs, ignore_errors=True)  # a killed pack's runs: this listing makes its own
+    with _progress(console) as progress:
+        task = progress.add_task("listing", total=None)
+
+        def counted():
+            for candidate in iter_source(source, image_roots):
+                progress.advance(task)
+                yield candidate
+        return OrderedListing(counted(), runs, keep_keys=keep_keys)
+
+
+def _drop_unused(stage: Path, out: Path, out_existed: bool) -> None:
+    """After a failed listing: the stage (and OUT) this run made, unless a killed pack's shards are there."""
+    shutil.rmtree(stage / PACK_SORT_RUNS, ignore_errors=True)
+    for folder in (stage, out) if not out_existed else (stage,):
+        if folder.is_dir() and not any(folder.iterdir()):
+            folder.rmdir()
 
 
 def pack_source(source: str | Path, out: str | Path, *, val_fraction: float = 0.1, shard_size: int = 1000,
                 max_caption_chars: int = 1000, image_roots: list[str | Path] | tuple = (),
-                console: Console | None = None, vectors: VectorSource | None = None) -> dict:
+                console: Console | None = None, vectors: VectorSource | None = None, workers: int = 1) -> dict:
     """Validate SOURCE and put shards, ``rejected.jsonl`` and (last) ``manifest.json`` into OUT.
 
     ``image_roots``: folders besides a CSV/JSONL's own that its rows may name images in.
     ``vectors``: stored vectors, matched to the samples by key (see ``vectors.py``).
+    ``workers``: processes that check and encode samples (the result is the same for any number).
+    A pack interrupted earlier with the same source and options resumes from its finished shards.
     """
     console = console or Console()
     source, out = Path(source), Path(out)
-    _check_options(val_fraction, shard_size, max_caption_chars)
-    candidates = list_source(source, [Path(r) for r in image_roots])
+    _check_options(val_fraction, shard_size, max_caption_chars, workers)
+    roots = [Path(r) for r in image_roots]
     stored = StoredVectors(vectors) if vectors is not None else None
-    stage = _staging(out)
-    try:
-        manifest = _pack_into(stage, source, candidates, out, val_fraction=val_fraction, shard_size=shard_size,
-                              max_caption_chars=max_caption_chars, console=console, vectors=stored)
-        _commit(stage, out, [name for split in SPLITS for name in manifest["splits"][split]["shards"]])
-    finally:
-        shutil.rmtree(stage, ignore_errors=True)  # gone after a commit; after a failure, the half pack
+    options = {"val_fraction": val_fraction, "shard_size": shard_size, "max_caption_chars": max_caption_chars,
+               "image_roots": [str(r.resolve()) for r in roots]}
+    out_existed = out.exists()
+    stage = open_stage(out)
+    with held(stage, out):
+        try:
+            listing = _list(source, stage, roots, stored is not None, console)
+        except BaseException:
+            _drop_unused(stage, out, out_existed)
+            raise
+        try:
+            manifest = _pack_into(stage, source, out, listing, options, stored, workers, console,
+                                  _pack_fingerprint(source, listing, options, vectors))
+        finally:
+            listing.close()
     _summary(console, manifest, out / REJECTED)
+    return manifest
+
+
+def _pack_into(stage: Path, source: Path, out: Path, listing: OrderedListing, options: dict,
+               vectors: StoredVectors | None, workers: int, console: Console, fingerprint: str) -> dict:
+    """Everything into STAGE, then into OUT. A failure leaves the stage for the next run to resume
+    from; only a pack that packed nothing removes it (there is nothing to resume)."""
+    try:
+        staged = StagedPack(stage, fingerprint, options["shard_size"])
+        if staged.resumed_at:
+            console.print(f"resuming an interrupted pack: {staged.resumed_at:,} of {listing.count:,} samples "
+                          f"are in finished shards")
+        _write_samples(listing, staged, workers=workers, val_fraction=options["val_fraction"],
+                       max_caption_chars=options["max_caption_chars"], vectors=vectors, console=console)
+        if not staged.progress["packed"]:
+            rejects = staged.rejects_text()
+            shutil.rmtree(stage)
+            _refuse_empty(source, out, listing.count, rejects)
+        manifest = _manifest(source, listing, staged, options["val_fraction"])
+        if vectors is not None:
+            manifest["vectors"] = vectors.write_entries(stage, manifest["splits"])
+        (stage / MANIFEST).write_text(json.dumps(manifest, indent=2, ensure_ascii=False) + "\n", encoding="utf-8")
+        commit(stage, out, [name for split in SPLITS for name in manifest["splits"][split]["shards"]])
+    except OSError as exc:  # a full disk, a folder that turned read-only
+        raise DataError(f"cannot write the pack into {out}: {exc.strerror or exc}",
+                        hint="free some space or pass another --out, then run the same command again: it "
+                             "resumes from the finished shards; an earlier pack there is unchanged") from None
     return manifest

@@ -1,7 +1,8 @@
 """Listing what a source offers: a folder of images, or a CSV/JSONL table of image paths and captions.
 
 Listing reads no image and checks no caption; it only finds the samples, each as a ``Candidate``
-with a key and where a person finds it. Problems that are clear from the listing alone (a row that
+with a key and where a person finds it. ``iter_source`` streams them in the source's own order
+(memory flat however large the table or folder); ``list_source`` is the same, sorted by key. Problems that are clear from the listing alone (a row that
 does not parse, an image value that is not a path) ride along as the candidate's ``problem`` and
 become rejects when the sample is checked. Problems with the table itself (no header, a column
 named twice, no rows) are ``DataError``: nothing could be packed from it as intended.
@@ -13,10 +14,10 @@ otherwise decides which files of this machine end up in the shards.
 from __future__ import annotations
 
 import csv
-import io
 import json
 import os
 import re
+from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -48,6 +49,12 @@ class Candidate:
     labels_path: Path | None = None
     problem: tuple[str, str] | None = None  # a reject already known while listing
     outside: bool = False             # a table row naming an image outside the allowed folders
+    order: tuple = ()                 # breaks ties between equal keys: the row number, or the path's parts
+
+
+def candidate_order(candidate: Candidate) -> tuple:
+    """Key order; equal keys in listing order (a table's rows, a folder's sorted paths)."""
+    return candidate.key, candidate.order
 
 
 def sample_key(name: str) -> str:
@@ -75,18 +82,37 @@ def decode_utf8(data: bytes, what: str) -> str:
 # folders
 
 
-def _list_folder(root: Path) -> list[Candidate]:
-    found = []
-    for path in sorted(root.rglob("*")):
-        if path.suffix.lower() not in IMAGE_SUFFIXES or not path.is_file():
+def _image_files(folder: Path) -> Iterator[Path]:
+    """Image files under FOLDER, in directory order (unsorted: a folder of millions is never held).
+    Hidden files and folders are passed over (editor checkpoints, "._x.jpg" resource forks); linked
+    folders are not entered, linked files are listed, an unreadable folder is skipped."""
+    try:
+        with os.scandir(folder) as entries:
+            found = list(entries)  # one folder's entries; closed before descending
+    except PermissionError:
+        return
+    for entry in found:
+        if entry.name.startswith("."):
             continue
+        if entry.is_dir(follow_symlinks=False):
+            yield from _image_files(folder / entry.name)
+        elif Path(entry.name).suffix.lower() in IMAGE_SUFFIXES and entry.is_file():
+            yield folder / entry.name
+
+
+def _iter_folder(root: Path) -> Iterator[Candidate]:
+    listed = 0
+    for path in _image_files(root):
         relative_path = path.relative_to(root)
-        if any(part.startswith(".") for part in relative_path.parts):
-            continue  # hidden files and folders: editor checkpoints, "._x.jpg" resource forks
         relative = relative_path.with_suffix("").as_posix()
-        found.append(Candidate(key=sample_key(relative), source=str(path), image_path=path,
-                               caption_path=path.with_suffix(".txt"), labels_path=path.with_suffix(".json")))
-    return found
+        listed += 1
+        yield Candidate(key=sample_key(relative), source=str(path), image_path=path,
+                        caption_path=path.with_suffix(".txt"), labels_path=path.with_suffix(".json"),
+                        order=relative_path.parts)  # sorted paths compare by their parts
+    if not listed:
+        raise DataError(f"no images found under {root}",
+                        hint=f"images must end in one of {', '.join(IMAGE_SUFFIXES)}, each with a "
+                             "same-name .txt caption beside it")
 
 
 # ---------------------------------------------------------------------------------------------
@@ -136,9 +162,9 @@ def _has_undecodable(values) -> bool:
     return False
 
 
-def _read_table(path: Path) -> bytes:
+def _open_table(path: Path, **how):
     try:
-        return path.read_bytes()
+        return open(path, **how)
     except OSError as exc:
         raise DataError(f"cannot read {path}: {exc.strerror or exc}",
                         hint="check the file's permissions, or point SOURCE at a readable copy") from None
@@ -157,78 +183,92 @@ def _check_header(path: Path, fields: list[str]) -> None:
                         "'caption'", hint=_TABLE_HINT)
 
 
-def _list_csv(path: Path, roots: list[Path]) -> list[Candidate]:
-    # surrogateescape keeps a bad byte in one row from making the whole file unreadable
-    text = _read_table(path).decode("utf-8", errors="surrogateescape").removeprefix("\ufeff")
-    reader = csv.DictReader(io.StringIO(text, newline=""))
-    found = []
-    try:
-        _check_header(path, reader.fieldnames or [])
-        for row in reader:
-            source = f"{path}:{reader.line_num}"
-            if None in row:  # more cells than header columns
-                candidate = Candidate(key="", source=source, image_path=None,
-                                      problem=("bad_row", "more cells than header columns"))
-            else:
-                row = {k: v for k, v in row.items() if not (k not in TABLE_COLUMNS and v in (None, ""))}
-                candidate = _table_candidate(row, path.parent, source, roots)
-            if _has_undecodable(list(row.keys()) + list(row.values())):
-                candidate.problem = ("not_utf8", "the row holds bytes that are not UTF-8")
-            found.append(candidate)
-    except csv.Error as exc:  # e.g. a cell over csv's field size limit: the rest cannot be trusted
-        raise DataError(f"{path}: the row after line {reader.line_num} cannot be parsed as CSV: {exc}",
-                        hint="check the quotes around that row; a cell that long is usually an unclosed quote") from None
-    if not found:
+def _iter_csv(path: Path, roots: list[Path]) -> Iterator[Candidate]:
+    # surrogateescape keeps a bad byte in one row from making the whole file unreadable; utf-8-sig
+    # drops a leading BOM (common from spreadsheet tools)
+    with _open_table(path, encoding="utf-8-sig", errors="surrogateescape", newline="") as stream:
+        reader = csv.DictReader(stream)
+        rows = 0
+        try:
+            _check_header(path, reader.fieldnames or [])
+            for rows, row in enumerate(reader, start=1):
+                source = f"{path}:{reader.line_num}"
+                if None in row:  # more cells than header columns
+                    candidate = Candidate(key="", source=source, image_path=None,
+                                          problem=("bad_row", "more cells than header columns"))
+                else:
+                    row = {k: v for k, v in row.items() if not (k not in TABLE_COLUMNS and v in (None, ""))}
+                    candidate = _table_candidate(row, path.parent, source, roots)
+                if _has_undecodable(list(row.keys()) + list(row.values())):
+                    candidate.problem = ("not_utf8", "the row holds bytes that are not UTF-8")
+                candidate.order = (rows,)
+                yield candidate
+        except csv.Error as exc:  # e.g. a cell over csv's field size limit: the rest cannot be trusted
+            raise DataError(f"{path}: the row after line {reader.line_num} cannot be parsed as CSV: {exc}",
+                            hint="check the quotes around that row; a cell that long is usually an unclosed "
+                                 "quote") from None
+    if not rows:
         raise DataError(f"{path} has a header row but no data rows", hint=_TABLE_HINT)
-    return found
 
 
-def _list_jsonl(path: Path, roots: list[Path]) -> list[Candidate]:
-    found = []
-    for number, raw in enumerate(_read_table(path).splitlines(), start=1):
+def _jsonl_lines(path: Path) -> Iterator[bytes]:
+    """The file's lines as ``bytes.splitlines`` of the whole file would give them (a lone CR also
+    ends a line), read one newline-ended piece at a time."""
+    with _open_table(path, mode="rb") as stream:
+        for piece in stream:
+            yield from piece.splitlines()
+
+
+def _jsonl_candidate(raw: bytes, source: str, path: Path, roots: list[Path]) -> Candidate:
+    try:
+        row = json.loads(decode_utf8(raw, "line"))
+    except Reject as rej:
+        return Candidate(key="", source=source, image_path=None, problem=(rej.reason, rej.detail))
+    except json.JSONDecodeError as exc:
+        return Candidate(key="", source=source, image_path=None, problem=("bad_row", str(exc)))
+    if not isinstance(row, dict):
+        return Candidate(key="", source=source, image_path=None, problem=("bad_row", "each line must be a JSON object"))
+    return _table_candidate(row, path.parent, source, roots)
+
+
+def _iter_jsonl(path: Path, roots: list[Path]) -> Iterator[Candidate]:
+    rows = 0
+    for number, raw in enumerate(_jsonl_lines(path), start=1):
         if not raw.strip():
             continue
-        source = f"{path}:{number}"
-        try:
-            row = json.loads(decode_utf8(raw, "line"))
-        except Reject as rej:
-            found.append(Candidate(key="", source=source, image_path=None, problem=(rej.reason, rej.detail)))
-            continue
-        except json.JSONDecodeError as exc:
-            found.append(Candidate(key="", source=source, image_path=None, problem=("bad_row", str(exc))))
-            continue
-        if not isinstance(row, dict):
-            found.append(Candidate(key="", source=source, image_path=None,
-                                   problem=("bad_row", "each line must be a JSON object")))
-            continue
-        found.append(_table_candidate(row, path.parent, source, roots))
-    if not found:
+        rows += 1
+        candidate = _jsonl_candidate(raw, f"{path}:{number}", path, roots)
+        candidate.order = (rows,)
+        yield candidate
+    if not rows:
         raise DataError(f"{path} holds no rows", hint='write one JSON object per line: {"image": "a.jpg", '
                                                       '"caption": "..."} plus any label fields')
-    return found
 
 
-def _refuse_outside(table: Path, found: list[Candidate], roots: list[Path]) -> None:
-    outside = [c for c in found if c.outside]
-    if not outside:
-        return
-    first = outside[0]
-    common = os.path.commonpath([str(c.image_path.resolve().parent) for c in outside])
-    allowed = ", ".join(str(r) for r in roots)
-    raise DataError(f"{len(outside)} row(s) of {table} name images outside {allowed}, e.g. {first.source} "
-                    f"names {first.image_path}; a table may only name images under its own folder",
-                    hint=f"if these images are meant to be packed, allow their folder: --image-root {common}")
-
-
-def _list_table(path: Path, image_roots: list[Path]) -> list[Candidate]:
+def _iter_table(path: Path, image_roots: list[Path]) -> Iterator[Candidate]:
+    """The table's rows; rows naming images outside the allowed folders are counted on the way and
+    refused together at the end, before anything has been packed."""
     roots = [path.parent.resolve(), *(root.resolve() for root in image_roots)]
-    found = (_list_csv if path.suffix.lower() == ".csv" else _list_jsonl)(path, roots)
-    _refuse_outside(path, found, roots)
-    return found
+    outside, first, common = 0, None, ""
+    for candidate in (_iter_csv if path.suffix.lower() == ".csv" else _iter_jsonl)(path, roots):
+        if candidate.outside:
+            outside += 1
+            first = first or candidate
+            parent = str(candidate.image_path.resolve().parent)
+            common = os.path.commonpath([common, parent]) if common else parent
+        yield candidate
+    if outside:
+        allowed = ", ".join(str(r) for r in roots)
+        raise DataError(f"{outside} row(s) of {path} name images outside {allowed}, e.g. {first.source} "
+                        f"names {first.image_path}; a table may only name images under its own folder",
+                        hint=f"if these images are meant to be packed, allow their folder: --image-root {common}")
 
 
-def list_source(source: Path, image_roots: list[Path] | tuple = ()) -> list[Candidate]:
-    """Every sample the source offers, sorted by key; equal keys keep listing order (path, line).
+def iter_source(source: Path, image_roots: list[Path] | tuple = ()) -> Iterator[Candidate]:
+    """Every sample the source offers, in the source's order (a table's rows; a folder's files in
+    directory order), one at a time. Problems with the source itself raise ``DataError``: before the
+    first candidate (a missing source, a bad header) or after the last (no rows, rows outside the
+    allowed folders), so a caller that lists everything first packs nothing from a bad source.
 
     ``image_roots``: folders besides a table's own that its rows may name images in.
     """
@@ -240,15 +280,16 @@ def list_source(source: Path, image_roots: list[Path] | tuple = ()) -> list[Cand
         if not Path(root).is_dir():
             raise DataError(f"--image-root {root} is not a folder", hint="name an existing folder of images")
     if source.is_dir():
-        found = _list_folder(source)
-        if not found:
-            raise DataError(f"no images found under {source}",
-                            hint=f"images must end in one of {', '.join(IMAGE_SUFFIXES)}, each with a "
-                                 "same-name .txt caption beside it")
+        yield from _iter_folder(source)
     elif source.suffix.lower() in (".csv", ".jsonl"):
-        found = _list_table(source, [Path(r) for r in image_roots])
+        yield from _iter_table(source, [Path(r) for r in image_roots])
     else:
         raise DataError(f"SOURCE {source} is a {source.suffix or 'suffix-less'} file; align packs "
                         "folders, .csv and .jsonl",
                         hint="point SOURCE at the folder holding the images, or at a .csv/.jsonl listing them")
-    return sorted(found, key=lambda c: c.key)  # stable sort: the first listed copy of a key wins
+
+
+def list_source(source: Path, image_roots: list[Path] | tuple = ()) -> list[Candidate]:
+    """Every sample the source offers, sorted by key; equal keys keep listing order (row, path).
+    Holds them all: ``align pack`` streams through ``iter_source`` instead."""
+    return sorted(iter_source(source, image_roots), key=candidate_order)
