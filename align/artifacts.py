@@ -49,6 +49,15 @@ FEATURE_SKIPPED = "skipped.txt"  # keys whose image failed to decode
 FEATURE_CHUNKS = "chunks"  # finished chunks of a build in progress (removed when it completes)
 FEATURE_LOCK = ".lock"  # held while a process builds the entry
 
+# training tables (beside the feature cache: <cache root>/tables/<split>-<digest>/), memory-mapped by every rank
+TABLES = "tables"
+TABLE_INFO = "table.json"  # what the table was built from and its row count; written last
+TABLE_CAPTIONS = "captions.utf8"  # every caption's UTF-8 bytes, one after another
+TABLE_OFFSETS = "caption_offsets.i64"  # (N + 1,) int64: caption i is bytes offsets[i]:offsets[i + 1]
+TABLE_CAPTION_IDS = "caption_ids.i64"  # (N,) int64: equal id = the same caption text
+TABLE_LABEL_IDS = "label_ids.i64"  # (N,) int64: equal id = the same labels; -1 = none
+TABLE_FEATURE_ROWS = "feature_rows.i64"  # (N,) int64: the feature entry's row of training row i
+
 # export (align export)
 EXPORT_INFO = "export.json"
 EXPORT_ADAPTER = "adapter"

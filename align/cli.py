@@ -67,8 +67,12 @@ def cmd_features(args) -> int:
     from .features import build_recipe_features
     for feats in build_recipe_features(_recipe(args), console=console):
         how = (f"built, {feats.build.images_per_s:.0f} img/s" if feats.build else "already cached")
-        console.print(f"{feats.fingerprint['split']}: {len(feats.keys)} images x {feats.views} view(s) "
+        console.print(f"{feats.fingerprint['split']}: {len(feats)} images x {feats.views} view(s) "
                       f"({how}) in {feats.path}")
+    from .training.data import prepare_tables  # the captions and ids, so training starts without the shards
+    for table in prepare_tables(_recipe(args), console):
+        console.print(f"training table: {len(table)} rows ({'built' if table.built else 'already built'}) "
+                      f"in {table.path}")
     return 0
 
 

@@ -39,7 +39,7 @@ def main(spec_path: str) -> None:
               "backend": dist.get_backend() if dist.is_initialized() else None, "runs": {}}
     for run in spec["runs"]:
         recipe = recipe_from_toml(run["toml"], [f"data.shards={json.dumps(spec['shards'])}"])
-        if data is None:  # rank 0 embeds the images once; the others receive the table
+        if data is None:  # built once (under a lock), then every rank opens the same files by path
             data = shared_training_data(recipe, console, accelerator)
             report["features_sha256"] = hashlib.sha256(data.image_features.numpy().tobytes()).hexdigest()
             report["keys"] = data.keys

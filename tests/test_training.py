@@ -16,9 +16,10 @@ from rich.console import Console
 from align.errors import AlignError
 from align.recipe import recipe_from_toml
 from align.seeding import epoch_generator, seeded_permutation, stable_hash
-from align.training import EpochSampler, StepBatches, TrainingData, check_tower_untouched, prepare_training_data, train
+from align.training import EpochSampler, StepBatches, check_tower_untouched, prepare_training_data, train
 from align.vision import load_image_tower
 from recipes import tiny_toml
+from test_training_table import hand_made_data
 
 REPO = Path(__file__).resolve().parent.parent
 ONE_STEP = tiny_toml("lora", name="one-step", train__steps=1, train__warmup_steps=0, train__lr=5e-4)
@@ -57,17 +58,10 @@ def test_sampler_reads_one_permutation_per_epoch_as_a_stream():
     assert torch.equal(EpochSampler(10, 4, 5).batch(3), sampler.batch(3))
 
 
-def _table(n: int = 12, dim: int = 4, views: int | None = None) -> TrainingData:
-    features = torch.nn.functional.normalize(torch.randn(n, dim), dim=-1)
-    return TrainingData(keys=[f"k{i}" for i in range(n)], captions=[f"caption {i}" for i in range(n)],
-                        labels=[{} for _ in range(n)], image_features=features,
-                        caption_ids=torch.arange(n), label_ids=None, tower_fingerprint={},
-                        image_views=torch.randn(n, views, dim).half() if views else None)
-
-
-@pytest.mark.parametrize("views", [None, 3])
-def test_ranks_split_the_captions_and_share_the_global_batch(views):
-    data = _table(views=views)
+@pytest.mark.parametrize("views", [1, 3])
+def test_ranks_split_the_captions_and_share_the_global_batch(views, tmp_path):
+    # the table in its real on-disk layout (tests/test_training_table.py builds it from files)
+    data = hand_made_data(tmp_path, n=12, dim=4, views=views)
     ranks = [StepBatches(data, batch_size=8, seed=1, world=2, rank=r, device=torch.device("cpu")) for r in range(2)]
     alone = StepBatches(data, batch_size=8, seed=1, world=1, rank=0, device=torch.device("cpu"))
     for step in range(4):  # 32 positions over 12 rows: batches straddle epochs

@@ -125,8 +125,8 @@ def _samples(shards: list[Path], expected: int, select=None) -> Iterator[dict]:
     """
     import webdataset
 
-    # no node/worker splitting: every reader gets the whole split (in training, rank 0 reads it and
-    # shares the table), so the order never depends on how many processes are running
+    # no node/worker splitting: every reader gets the whole split (the training table is built once
+    # from it and opened by every rank), so the order never depends on how many processes are running
     dataset = webdataset.WebDataset([str(p) for p in shards], shardshuffle=False, empty_check=False,
                                     nodesplitter=None, workersplitter=None, select_files=select)
     seen = 0
@@ -167,26 +167,43 @@ class SplitTable:
         return len(self.keys)
 
 
-def load_table(shards_dir: str | Path, split: str) -> SplitTable:
-    """Keys, captions and labels of a split; image members are skipped, not decoded."""
+def iter_table(shards_dir: str | Path, split: str) -> Iterator[tuple[str, str, dict]]:
+    """(key, caption, labels) of a split in canonical order, one sample at a time: memory does not
+    grow with the split (the training table is built from this stream). Image members are skipped,
+    not decoded. The shards are checked now; damage found while reading raises ``DataError``."""
     shards = split_shards(shards_dir, split)
-    manifest = read_manifest(shards_dir)
-    expected = manifest["splits"][split]["samples"]
+    expected = read_manifest(shards_dir)["splits"][split]["samples"]
+
+    def generate():
+        seen = 0
+        for sample in _samples(shards, expected, select=_metadata_only):
+            try:
+                row = (sample["__key__"], sample["txt"].decode("utf-8"),
+                       json.loads(sample["json"]) if "json" in sample else {})
+            except (KeyError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+                _check_paths(shards)  # a sample cut off by a damaged shard: name the shard and the byte
+                raise DataError(f"sample {sample['__key__']} in {sample.get('__url__', shards_dir)} has a damaged "
+                                f"caption or labels member ({type(exc).__name__}: {exc})",
+                                hint="the shards were changed after packing; " + _PACK_HINT + " again") from None
+            seen += 1
+            yield row
+        if seen != expected:  # the shards are whole (or _samples had said so), yet hold other samples
+            raise DataError(f"split '{split}' in {shards_dir} holds {seen} samples but its manifest "
+                            f"says {expected}", hint="the shards were changed after packing; " + _PACK_HINT + " again")
+
+    return generate()
+
+
+def load_table(shards_dir: str | Path, split: str) -> SplitTable:
+    """Keys, captions and labels of a split, held in memory (``iter_table`` streams them)."""
+    rows = iter_table(shards_dir, split)
     keys, captions, labels = [], [], []
-    for sample in _samples(shards, expected, select=_metadata_only):
-        keys.append(sample["__key__"])
-        try:
-            captions.append(sample["txt"].decode("utf-8"))
-            labels.append(json.loads(sample["json"]) if "json" in sample else {})
-        except (KeyError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-            _check_paths(shards)  # a sample cut off by a damaged shard: name the shard and the byte
-            raise DataError(f"sample {sample['__key__']} in {sample.get('__url__', shards_dir)} has a damaged "
-                            f"caption or labels member ({type(exc).__name__}: {exc})",
-                            hint="the shards were changed after packing; " + _PACK_HINT + " again") from None
-    if len(keys) != expected:  # the shards are whole (or _samples had said so), yet hold other samples
-        raise DataError(f"split '{split}' in {shards_dir} holds {len(keys)} samples but its manifest "
-                        f"says {expected}", hint="the shards were changed after packing; " + _PACK_HINT + " again")
-    return SplitTable(keys, captions, labels, manifest["splits"][split]["content_hash"], shards)
+    for key, caption, sample_labels in rows:
+        keys.append(key)
+        captions.append(caption)
+        labels.append(sample_labels)
+    info = read_manifest(shards_dir)["splits"][split]
+    return SplitTable(keys, captions, labels, info["content_hash"], split_shards(shards_dir, split))
 
 
 def _image_member(sample: dict) -> tuple[bytes, str] | None:

@@ -36,11 +36,13 @@ class BuildReport:
 
 @dataclass
 class FeatureSet:
-    """One split's cached features: row i belongs to ``keys[i]``."""
+    """One split's cached features: row i belongs to ``keys[i]``.
 
-    keys: list[str]
+    Opening one reads no row: ``array`` is a memory map, and ``keys`` / ``skipped`` are read from
+    their files on first use (at millions of rows the keys alone are hundreds of MB of Python
+    strings, which training never needs). ``unit_rows`` gathers rows as the loop uses them."""
+
     array: np.ndarray  # (N, K, D) float16, a read-only memory map of features.f16
-    skipped: list[str] = field(default_factory=list)
     fingerprint: dict = field(default_factory=dict)
     path: Path | None = None
     build: BuildReport | None = None  # set when this call ran the tower
@@ -49,10 +51,35 @@ class FeatureSet:
     def views(self) -> int:
         return int(self.array.shape[1])
 
+    @property
+    def dim(self) -> int:
+        return int(self.array.shape[2])
+
+    def __len__(self) -> int:
+        return int(self.array.shape[0])
+
+    @cached_property
+    def keys(self) -> list[str]:
+        return read_lines(self.path / A.FEATURE_KEYS) if self.path is not None else []
+
+    @cached_property
+    def skipped(self) -> list[str]:
+        return read_lines(self.path / A.FEATURE_SKIPPED) if self.path is not None else []
+
+    def unit_rows(self, rows: np.ndarray, view: int = 0) -> torch.Tensor:
+        """Rows ``rows`` of one view as float32, re-normalised after the float16 round trip. (n, D)
+
+        Only those rows are read. Per row, the numbers are the ones normalising the whole table
+        gives (each row's norm is its own reduction; tests/test_training_table.py checks it)."""
+        picked = np.asarray(self.array[np.asarray(rows, dtype=np.int64), view], dtype=np.float32)  # (n, D)
+        return F.normalize(torch.from_numpy(picked), dim=-1)
+
     @cached_property
     def embeddings(self) -> torch.Tensor:
-        """View 0 (the plain preprocessing) as float32, re-normalised after the float16 round trip. (N, D)"""
-        return F.normalize(torch.from_numpy(np.asarray(self.array[:, 0], dtype=np.float32)), dim=-1)
+        """View 0 (the plain preprocessing) of every row, as ``unit_rows`` gives them. (N, D) float32
+
+        The whole table in memory: for evaluation and indexing; training gathers per step."""
+        return self.unit_rows(np.arange(len(self)))
 
     def _index(self, keys: list[str]) -> np.ndarray:
         where = {k: i for i, k in enumerate(self.keys)}
@@ -64,11 +91,7 @@ class FeatureSet:
 
     def rows_for(self, keys: list[str]) -> torch.Tensor:
         """View-0 rows for ``keys``, in that order. (n, D) float32"""
-        return self.embeddings[torch.from_numpy(self._index(keys))]
-
-    def view_rows_for(self, keys: list[str]) -> torch.Tensor:
-        """Every view for ``keys``, in that order, kept in float16 to halve memory. (n, K, D)"""
-        return torch.from_numpy(np.ascontiguousarray(self.array[self._index(keys)]))
+        return self.unit_rows(self._index(keys))
 
     def stored_rows_for(self, keys: list[str]) -> np.ndarray:
         """View-0 rows for ``keys`` exactly as stored (float16, not re-normalised). (n, D)"""
@@ -76,19 +99,30 @@ class FeatureSet:
 
 
 def load_feature_cache(entry: str | Path) -> FeatureSet:
-    """Open a complete entry; AlignError when it is incomplete or damaged."""
+    """Open a complete entry; AlignError when it is incomplete or damaged. Reads no row and no key."""
     entry = Path(entry)
     problem = entry_problem(entry)
     if problem:
         raise AlignError(f"feature cache {entry} is unusable: {problem}",
                          "delete that folder, or run `align features RECIPE` to rebuild it")
     fingerprint = read_fingerprint(entry)
-    keys = read_lines(entry / A.FEATURE_KEYS)
-    shape = (len(keys), fingerprint["views"], fingerprint["tower"]["feature_dim"])
-    array = (np.memmap(entry / A.FEATURES, dtype=np.float16, mode="r", shape=shape) if keys
+    shape = (count_lines(entry / A.FEATURE_KEYS), fingerprint["views"], fingerprint["tower"]["feature_dim"])
+    array = (np.memmap(entry / A.FEATURES, dtype=np.float16, mode="r", shape=shape) if shape[0]
              else np.zeros(shape, dtype=np.float16))
-    return FeatureSet(keys=keys, array=array, skipped=read_lines(entry / A.FEATURE_SKIPPED),
-                      fingerprint=fingerprint, path=entry)
+    return FeatureSet(array=array, fingerprint=fingerprint, path=entry)
+
+
+def count_lines(path: Path, block: int = 1 << 22) -> int:
+    """How many keys ``read_lines`` would give (non-empty lines), read in blocks: no list of
+    millions of strings for a count."""
+    count, after_newline = 0, True
+    with open(path, "rb") as fh:
+        while chunk := fh.read(block):
+            newline = np.frombuffer(chunk, dtype=np.uint8) == 10  # (n,)
+            before = np.concatenate([[after_newline], newline[:-1]])  # (n,) the byte before each is a newline
+            count += int((~newline & before).sum())  # a line is counted at its first byte
+            after_newline = bool(newline[-1])
+    return count
 
 
 def read_lines(path: Path) -> list[str]:
@@ -106,7 +140,7 @@ def entry_problem(entry: Path, expected: dict | None = None) -> str | None:
         return "its fingerprint differs: " + "; ".join(fingerprint_changes(stored, expected))
     if not (entry / A.FEATURES).is_file() or not (entry / A.FEATURE_KEYS).is_file():
         return "the build did not finish"
-    rows = len(read_lines(entry / A.FEATURE_KEYS))
+    rows = count_lines(entry / A.FEATURE_KEYS)
     want = rows * stored["views"] * stored["tower"]["feature_dim"] * 2
     have = (entry / A.FEATURES).stat().st_size
     if have != want:

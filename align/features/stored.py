@@ -74,7 +74,7 @@ def gallery_stored_features(image_side: dict, shards_dir: str | Path, split: str
 def stored_record(feats: FeatureSet) -> dict:
     """What the image side records about stored vectors: model id, content hash, rows."""
     side = feats.fingerprint["tower"]
-    return {"model": side["model"], "content_sha256": side["vectors_sha256"], "rows": len(feats.keys),
+    return {"model": side["model"], "content_sha256": side["vectors_sha256"], "rows": len(feats),
             "split": feats.fingerprint["split"]}
 
 

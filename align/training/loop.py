@@ -48,8 +48,9 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, console:
     # the run folder: the resolved recipe sits beside every checkpoint, so a run can always be
     # evaluated, resumed or exported with exactly what trained it
     previous, changes = _open_run(run, recipe, resume, accelerator.is_main_process)
-    # frozen features: the image tower runs once per image here and never again in the loop
-    data = data or shared_training_data(recipe, console, accelerator)
+    # frozen features: the image tower runs once per image here and never again in the loop; every
+    # rank opens the same memory-mapped table, and each step reads only its rows
+    data = data if data is not None else shared_training_data(recipe, console, accelerator)
     batches = StepBatches(data, cfg.batch_size, cfg.seed, accelerator.num_processes, accelerator.process_index,
                           accelerator.device)
     # text tower, loss (its temperature learns too), AdamW, warm-up + cosine schedule, seeded by the recipe;
@@ -77,7 +78,7 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, console:
     check_tower_untouched(data)
     return {"run_dir": str(run.path), "steps": last_record.get("step", start_step), "stopped_early": stopped_early,
             "final_loss": last_record.get("loss"), "pairs_per_s": last_record.get("pairs_per_s"),
-            "elapsed_s": total_elapsed, "train_pairs": len(data.captions),
+            "elapsed_s": total_elapsed, "train_pairs": len(data),
             "tower_fingerprint": data.tower_fingerprint}
 
 
@@ -158,7 +159,7 @@ class _Learner:
     @classmethod
     def build(cls, recipe: Recipe, run_dir: Path, data: TrainingData) -> _Learner:
         cfg = recipe.train
-        tower, loss_fn = build_models(recipe, run_dir, data.image_features.shape[1], data.captions)
+        tower, loss_fn = build_models(recipe, run_dir, data.feature_dim, data.captions)
         named = trainable_parameters(tower, loss_fn)
         optimizer = torch.optim.AdamW(param_groups(list(named.items()), cfg.weight_decay), lr=cfg.lr)
         scheduler = torch.optim.lr_scheduler.LambdaLR(optimizer, warmup_cosine(cfg.warmup_steps, cfg.steps))

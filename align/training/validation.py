@@ -15,10 +15,9 @@ import numpy as np
 import torch
 from rich.console import Console
 
-from ..data.shards import load_table
 from ..errors import AlignError
-from ..features import split_features
-from ..labels import label_group
+from ..features import cache_root, split_features
+from ..features.table import split_table
 from ..metrics import recall_metrics_from_ranks, retrieval_ranks
 from ..recipe import Recipe
 from ..seeding import epoch_generator
@@ -34,7 +33,7 @@ class ValidationSet:
 
     captions: list[str]
     image_features: torch.Tensor  # (n, D) float32, unit norm
-    label_groups: list[str | None]  # one per row; None = the row matches only its own pair
+    label_groups: list[int | None]  # one per row, the labels' id; None = the row matches only its own pair
 
 
 def draw_subset(n: int, samples: int, seed: int) -> list[int]:
@@ -45,24 +44,23 @@ def draw_subset(n: int, samples: int, seed: int) -> list[int]:
 
 def prepare_validation(recipe: Recipe, data_dir, console: Console) -> ValidationSet:
     """The recipe's validation subset, its image features as the training rows got theirs (the tower's
-    cache, built once if missing, or the stored vectors)."""
+    cache, built once if missing, or the stored vectors) and its captions from the split's training
+    table: only the subset's rows are read."""
     split = recipe.data.eval_split
     try:
-        table = load_table(data_dir, split)
         feats = split_features(recipe.vision, data_dir, split, console).features
+        table = split_table(feats, data_dir, split, cache_root(data_dir, recipe.vision), console)
     except AlignError as exc:
         raise AlignError(f"train.eval_every needs the validation split '{split}': {exc.message}",
                          "pack with a validation share (align pack --val-fraction 0.1), or set train.eval_every=0"
                          ) from None
-    rows = {k: i for i, k in enumerate(table.keys)}
-    keep = [rows[k] for k in feats.keys]  # images that failed to decode drop out
-    if len(keep) < 2:
-        raise AlignError(f"train.eval_every needs at least 2 validation pairs, '{split}' has {len(keep)}",
+    if len(table) < 2:  # images that failed to decode dropped out
+        raise AlignError(f"train.eval_every needs at least 2 validation pairs, '{split}' has {len(table)}",
                          "pack with a larger --val-fraction, or set train.eval_every=0")
-    chosen = draw_subset(len(keep), recipe.train.eval_samples, recipe.train.seed)
-    return ValidationSet(captions=[table.captions[keep[i]] for i in chosen],
-                         image_features=feats.embeddings[chosen],
-                         label_groups=[label_group(table.labels[keep[i]]) for i in chosen])
+    chosen = np.array(draw_subset(len(table), recipe.train.eval_samples, recipe.train.seed), dtype=np.int64)
+    return ValidationSet(captions=table.captions.take(chosen),
+                         image_features=feats.unit_rows(table.feature_rows[chosen]),
+                         label_groups=[None if i < 0 else int(i) for i in table.label_ids[chosen]])
 
 
 @torch.no_grad()
