@@ -21,6 +21,7 @@ Figures go to OUT/bench.json and a plot to OUT/bench.png.
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import io
 import json
 import math
@@ -44,7 +45,7 @@ from align.data.demo import write_catalogue  # noqa: E402
 from align.data.pack import pack_source  # noqa: E402
 from align.data.shards import iter_images, load_table  # noqa: E402
 from align.features import image_features  # noqa: E402
-from align.loss import positive_ids  # noqa: E402
+from align.features.table import open_table, write_table  # noqa: E402
 from align.recipe import VisionConfig, recipe_from_dict  # noqa: E402
 from align.text import build_text_tower  # noqa: E402
 from align.training import TrainingData, prepare_training_data, train  # noqa: E402
@@ -151,15 +152,16 @@ def steady_rate(records: list[dict], warmup: int, batch: int) -> tuple[float, fl
     return batch / step, step
 
 
-def tiled(data: TrainingData, n: int, positives: str) -> TrainingData:
-    """``n`` pairs made by repeating the cached pairs (keys made unique)."""
-    rows = [i % len(data.keys) for i in range(n)]
-    captions = [data.captions[i] for i in rows]
-    labels = [data.labels[i] for i in rows]
-    caption_ids, label_ids = positive_ids(captions, labels, positives)
-    return TrainingData(keys=[f"{data.keys[i]}~{j}" for j, i in enumerate(rows)], captions=captions, labels=labels,
-                        image_features=data.image_features[rows], caption_ids=caption_ids, label_ids=label_ids,
-                        tower_fingerprint=data.tower_fingerprint)
+def tiled(data: TrainingData, n: int, shards: Path, work: Path) -> TrainingData:
+    """``n`` pairs made by repeating the cached pairs: a training table whose rows point at the
+    cached feature rows in turn (written like any training table, memory-mapped the same way)."""
+    table = load_table(shards, "train")
+    labels_of = dict(zip(table.keys, table.labels))
+    keys, feature_rows = data.keys, data.table.feature_rows
+    folder = work / "tiled" / str(n)
+    write_table(folder, ((data.captions[i % len(data)], labels_of[keys[i % len(data)]], int(feature_rows[i % len(data)]))
+                         for i in range(n)), {"tiled": n})
+    return dataclasses.replace(data, table=open_table(folder))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -395,7 +397,7 @@ def run(cfg: dict, out: Path) -> dict:
     for n in cfg["scaling"]:
         steps = math.ceil(n / cfg["batch"])
         recipe = bench_recipe(shards, work / f"cache-{cfg['sizes'][0]}-w0", cfg, cfg["sizes"][0], steps=steps)
-        records = run_train(recipe, work, tiled(native_data, n, recipe.loss.positives))
+        records = run_train(recipe, work, tiled(native_data, n, shards, work))
         epoch_s.append(records[-1]["elapsed_s"])
     small, large = cfg["scaling"][0], cfg["scaling"][-1]
     ratio, expected = epoch_s[-1] / epoch_s[0], large / small
