@@ -111,6 +111,13 @@ class EvalConfig:
     probe_max_iter: int = _f(1000, "linear probe solver iterations")
 
 
+    probe_rows: int = _f(20000, "the linear probe fits on at most this many training rows: a sample seeded by "
+                                "train.seed that keeps each class's share (0 = every row)")
+    recall_method: str = _f("exact", "how recall ranks the gallery: exact (every rank, scored in blocks) or faiss "
+                                     "(a flat inner-product index; ranks past the largest K only read as that deep)",
+                            ("exact", "faiss"))
+    block_rows: int = _f(4096, "rows per side of one block of scores (a 4096 x 4096 block is 64 MiB); images "
+                               "are classified this many at a time too")
 @dataclass
 class Recipe:
     name: str = _f("run", "a short name for the run")
@@ -281,7 +288,8 @@ def _validate_counts(recipe: Recipe) -> None:
     """Counts and rates with a lower bound (the types are already checked)."""
     t, tr, v, ev = recipe.text, recipe.train, recipe.vision, recipe.eval
     at_least = {"train.log_every": (tr.log_every, 1, "10"), "train.keep_checkpoints": (tr.keep_checkpoints, 1, "2"),
-                "eval.probe_max_iter": (ev.probe_max_iter, 1, "1000"), "train.threads": (tr.threads, 0, "0 (one per core)"),
+                "eval.probe_max_iter": (ev.probe_max_iter, 1, "1000"), "eval.probe_rows": (ev.probe_rows, 0, "20000"),
+                "eval.block_rows": (ev.block_rows, 1, "4096"), "train.threads": (tr.threads, 0, "0 (one per core)"),
                 "train.warmup_steps": (tr.warmup_steps, 0, "20"), "train.checkpoint_every": (tr.checkpoint_every, 0, "100"),
                 "vision.workers": (v.workers, 0, "0"), "text.new_tokens_cap": (t.new_tokens_cap, 0, "64"),
                 "train.grad_clip": (tr.grad_clip, 0, "1.0 (0 = off)"), "train.weight_decay": (tr.weight_decay, 0, "0.01")}
