@@ -161,25 +161,27 @@ import os, signal, sys
 from align.data import pack_stage
 from align.data.pack import pack_source
 
-adds = 0
-original = pack_stage.StagedPack.add
+source, out, method, when, workers = sys.argv[1], sys.argv[2], sys.argv[3], int(sys.argv[4]), int(sys.argv[5])
+calls = 0
+original = getattr(pack_stage.StagedPack, method)
 
-def add_then_die(self, checked, split):
-    global adds
-    adds += 1
-    if adds == int(sys.argv[3]):  # a real SIGKILL: no cleanup, no flush, no finally
+def call_then_die(self, *args):
+    global calls
+    calls += 1
+    if calls == when:  # a real SIGKILL: no cleanup, no flush, no finally
         os.kill(os.getpid(), signal.SIGKILL)
-    original(self, checked, split)
+    return original(self, *args)
 
-pack_stage.StagedPack.add = add_then_die
-pack_source(sys.argv[1], sys.argv[2], val_fraction=0.25, shard_size=3, workers=int(sys.argv[4]))
+setattr(pack_stage.StagedPack, method, call_then_die)
+pack_source(source, out, val_fraction=0.25, shard_size=3, workers=workers)
 """
 
 
-def killed_pack(source: Path, out: Path, after_samples: int, workers: int = 1) -> None:
-    """``align pack`` in a child process, killed with SIGKILL as it is about to write sample N."""
+def killed_pack(source: Path, out: Path, when: int, workers: int = 1, method: str = "add") -> None:
+    """``align pack`` in a child process, killed with SIGKILL as it enters ``StagedPack.METHOD`` for
+    the WHEN-th time (``add``: about to write a sample; ``_record_progress``: a shard just renamed)."""
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
-    done = subprocess.run([sys.executable, "-c", KILLED_PACK, str(source), str(out), str(after_samples), str(workers)],
+    done = subprocess.run([sys.executable, "-c", KILLED_PACK, str(source), str(out), method, str(when), str(workers)],
                           cwd=ROOT, env=env, capture_output=True, text=True, timeout=120)
     assert done.returncode == -9, done.stderr  # killed, not finished
     assert not (out / "manifest.json").exists()
@@ -191,7 +193,7 @@ def killed_pack(source: Path, out: Path, after_samples: int, workers: int = 1) -
 
 def test_a_killed_pack_resumes_and_ends_as_an_uninterrupted_one(mixed_folder, one_worker, tmp_path):
     out = tmp_path / "out"
-    killed_pack(mixed_folder, out, after_samples=20)  # mid-shard: bytes after the last progress record
+    killed_pack(mixed_folder, out, when=20)  # mid-shard: bytes after the last progress record
     stage_before = folder_bytes(out / PACK_STAGING)
     console = quiet()
     # resumed with two workers: the worker count is no part of what the staged shards depend on
@@ -206,14 +208,28 @@ def test_a_killed_pack_resumes_and_ends_as_an_uninterrupted_one(mixed_folder, on
 
 def test_a_pack_killed_while_workers_run_resumes_too(mixed_folder, one_worker, tmp_path):
     out = tmp_path / "out"
-    killed_pack(mixed_folder, out, after_samples=31, workers=2)
+    killed_pack(mixed_folder, out, when=31, workers=2)
     pack_source(mixed_folder, out, val_fraction=0.25, shard_size=3, console=quiet())
+    assert folder_bytes(out) == folder_bytes(one_worker)
+
+
+def test_a_pack_killed_between_a_shards_rename_and_its_record_resumes(mixed_folder, one_worker, tmp_path):
+    out = tmp_path / "out"
+    killed_pack(mixed_folder, out, when=6, method="_record_progress")
+    # the case at hand: a shard the last record saw open (with samples) is already renamed into place
+    progress = json.loads((out / PACK_STAGING / PACK_PROGRESS).read_text())
+    renamed = [f"{split}-{len(info['shards']):06d}.tar" for split, info in progress["splits"].items()
+               if info["open_samples"]]
+    assert renamed and all((out / PACK_STAGING / name).is_file() for name in renamed)
+    console = quiet()
+    pack_source(mixed_folder, out, val_fraction=0.25, shard_size=3, console=console)
+    assert "resuming an interrupted pack" in console.file.getvalue()
     assert folder_bytes(out) == folder_bytes(one_worker)
 
 
 def test_changed_options_or_source_do_not_reuse_staged_shards(mixed_folder, tmp_path):
     out = tmp_path / "out"
-    killed_pack(mixed_folder, out, after_samples=20)
+    killed_pack(mixed_folder, out, when=20)
     console = quiet()
     pack_source(mixed_folder, out, val_fraction=0.25, shard_size=4, console=console)  # another shard size
     assert "resuming" not in console.file.getvalue()
@@ -223,7 +239,7 @@ def test_changed_options_or_source_do_not_reuse_staged_shards(mixed_folder, tmp_
     changed = tmp_path / "changed"
     subprocess.run(["cp", "-a", str(mixed_folder), str(changed)], check=True)
     out = tmp_path / "out2"
-    killed_pack(changed, out, after_samples=20)
+    killed_pack(changed, out, when=20)
     (changed / "s00.txt").write_text("a caption changed after the kill")
     console = quiet()
     pack_source(changed, out, val_fraction=0.25, shard_size=3, console=console)

@@ -46,7 +46,7 @@ from ..fileio import write_text_atomic
 from .pack_check import Refused, split_of
 from .pack_order import OrderedListing, blocks_of
 from .pack_stage import StagedPack, commit, held, open_stage
-from .pack_workers import block_size_for, checked_blocks
+from .pack_workers import block_size_for, checked_blocks, checking_pool
 from .sources import Candidate, Reject, iter_source
 from .vectors import StoredVectors, VectorSource
 
@@ -91,7 +91,7 @@ def _take(staged: StagedPack, candidate: Candidate, outcome, val_fraction: float
         vectors.take(outcome.key, split)
 
 
-def _write_samples(listing: OrderedListing, staged: StagedPack, *, workers: int, val_fraction: float,
+def _write_samples(listing: OrderedListing, staged: StagedPack, pool, *, workers: int, val_fraction: float,
                    max_caption_chars: int, vectors: StoredVectors | None, console: Console) -> None:
     if vectors is not None:
         for split, key in staged.replayed:  # the samples of the shards a resumed pack keeps
@@ -100,7 +100,7 @@ def _write_samples(listing: OrderedListing, staged: StagedPack, *, workers: int,
     blocks = blocks_of(listing.ordered(skip=staged.resumed_at), block_size_for(remaining, workers))
     with _progress(console) as progress:
         task = progress.add_task("packing", total=listing.count, completed=staged.resumed_at)
-        for block, outcomes in checked_blocks(blocks, workers=workers, max_chars=max_caption_chars,
+        for block, outcomes in checked_blocks(blocks, pool, workers=workers, max_chars=max_caption_chars,
                                               image_optional=vectors is not None):
             for candidate, outcome in zip(block, outcomes):
                 _take(staged, candidate, outcome, val_fraction, vectors)
@@ -193,8 +193,9 @@ def _list(source: Path, stage: Path, image_roots: list[Path], keep_keys: bool, c
         task = progress.add_task("listing", total=None)
 
         def counted():
-            for candidate in iter_source(source, image_roots):
-                progress.advance(task)
+            for listed, candidate in enumerate(iter_source(source, image_roots), start=1):
+                if listed % 256 == 0:  # the bar takes a lock per update: not once per file
+                    progress.update(task, completed=listed)
                 yield candidate
         return OrderedListing(counted(), runs, keep_keys=keep_keys)
 
@@ -226,14 +227,14 @@ def pack_source(source: str | Path, out: str | Path, *, val_fraction: float = 0.
                "image_roots": [str(r.resolve()) for r in roots]}
     out_existed = out.exists()
     stage = open_stage(out)
-    with held(stage, out):
+    with held(stage, out), checking_pool(workers) as pool:  # the workers start while the listing is read
         try:
             listing = _list(source, stage, roots, stored is not None, console)
         except BaseException:
             _drop_unused(stage, out, out_existed)
             raise
         try:
-            manifest = _pack_into(stage, source, out, listing, options, stored, workers, console,
+            manifest = _pack_into(stage, source, out, listing, options, stored, (pool, workers), console,
                                   _pack_fingerprint(source, listing, options, vectors))
         finally:
             listing.close()
@@ -242,7 +243,7 @@ def pack_source(source: str | Path, out: str | Path, *, val_fraction: float = 0.
 
 
 def _pack_into(stage: Path, source: Path, out: Path, listing: OrderedListing, options: dict,
-               vectors: StoredVectors | None, workers: int, console: Console, fingerprint: str) -> dict:
+               vectors: StoredVectors | None, checking: tuple, console: Console, fingerprint: str) -> dict:
     """Everything into STAGE, then into OUT. A failure leaves the stage for the next run to resume
     from; only a pack that packed nothing removes it (there is nothing to resume)."""
     try:
@@ -250,7 +251,8 @@ def _pack_into(stage: Path, source: Path, out: Path, listing: OrderedListing, op
         if staged.resumed_at:
             console.print(f"resuming an interrupted pack: {staged.resumed_at:,} of {listing.count:,} samples "
                           f"are in finished shards")
-        _write_samples(listing, staged, workers=workers, val_fraction=options["val_fraction"],
+        pool, workers = checking
+        _write_samples(listing, staged, pool, workers=workers, val_fraction=options["val_fraction"],
                        max_caption_chars=options["max_caption_chars"], vectors=vectors, console=console)
         if not staged.progress["packed"]:
             rejects = staged.rejects_text()

@@ -115,7 +115,9 @@ class StagedPack:
                 if any(not (self.stage / name).is_file() for name in info["shards"]):
                     return None
                 if info["open_samples"]:
-                    lengths[PACK_OPEN_SHARD.format(name=self._shard_name(split, len(info["shards"])))] = info["open_bytes"]
+                    name = self._shard_name(split, len(info["shards"]))
+                    lengths[PACK_OPEN_SHARD.format(name=name)] = info["open_bytes"]
+                    self._reopen(name)
         except (KeyError, TypeError):
             return None
         for name, length in lengths.items():
@@ -123,6 +125,12 @@ class StagedPack:
             if (length and not path.is_file()) or (path.is_file() and path.stat().st_size < length):
                 return None
         return progress
+
+    def _reopen(self, name: str) -> None:
+        """A kill between a shard's rename and the next progress record: its recorded bytes are
+        still the first bytes of the renamed file, which goes back under its temporary name."""
+        if not (self.stage / PACK_OPEN_SHARD.format(name=name)).exists() and (self.stage / name).is_file():
+            os.replace(self.stage / name, self.stage / PACK_OPEN_SHARD.format(name=name))
 
     def _remove_unrecorded(self) -> None:
         """Everything in the stage the progress record does not speak for (the sorted runs are this

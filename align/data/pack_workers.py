@@ -14,6 +14,7 @@ import os
 import threading
 from collections import deque
 from collections.abc import Iterator
+from contextlib import contextmanager
 from concurrent.futures import Future, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from functools import partial
@@ -44,16 +45,34 @@ def block_size_for(total: int, workers: int) -> int:
     return max(1, min(64, total // (workers * IN_FLIGHT_PER_WORKER * 2)))
 
 
-def checked_blocks(blocks: Iterator[list[Candidate]], *, workers: int, max_chars: int,
-                   image_optional: bool) -> Iterator[tuple[list[Candidate], list[Checked | Refused]]]:
-    """Each block with its outcomes, in the blocks' order. ``workers`` 1 checks in this process."""
-    check = partial(check_block, max_chars=max_chars, image_optional=image_optional)
+def _ready() -> None:
+    """Nothing: handing each worker this starts it (its imports) while the listing is still read."""
+
+
+@contextmanager
+def checking_pool(workers: int) -> Iterator[ProcessPoolExecutor | None]:
+    """WORKERS processes, started now; None for one worker (checks run in this process)."""
     if workers == 1:
-        for block in blocks:
-            yield block, check(block)
+        yield None
         return
     pool = ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"),
                                initializer=_exit_with_parent)
+    try:
+        for _ in range(workers):  # one start per submission while fewer than WORKERS run
+            pool.submit(_ready)
+        yield pool
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
+
+
+def checked_blocks(blocks: Iterator[list[Candidate]], pool: ProcessPoolExecutor | None, *, workers: int,
+                   max_chars: int, image_optional: bool) -> Iterator[tuple[list[Candidate], list[Checked | Refused]]]:
+    """Each block with its outcomes, in the blocks' order; without a pool, checked in this process."""
+    check = partial(check_block, max_chars=max_chars, image_optional=image_optional)
+    if pool is None:
+        for block in blocks:
+            yield block, check(block)
+        return
     pending: deque[tuple[list[Candidate], Future]] = deque()
     try:
         for block in blocks:
@@ -71,4 +90,5 @@ def checked_blocks(blocks: Iterator[list[Candidate]], *, workers: int, max_chars
                         hint="run the same command again: the pack resumes from its finished shards; "
                              "fewer --workers need less memory") from None
     finally:
-        pool.shutdown(wait=True, cancel_futures=True)
+        for _, future in pending:
+            future.cancel()
