@@ -14,6 +14,7 @@ import sys
 import tarfile
 from pathlib import Path
 
+import numpy as np
 import pytest
 import skimage.data
 from PIL import Image
@@ -25,6 +26,7 @@ from align.data import pack_order
 from align.data.pack import pack_source
 from align.data.pack_order import OrderedListing
 from align.data.sources import iter_source, list_source
+from align.data.vectors import VectorSource
 from align.errors import DataError
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -173,22 +175,29 @@ def call_then_die(self, *args):
     return original(self, *args)
 
 setattr(pack_stage.StagedPack, method, call_then_die)
-pack_source(source, out, val_fraction=0.25, shard_size=3, workers=workers)
+vectors = None
+if len(sys.argv) > 6:
+    from pathlib import Path
+    from align.data.vectors import VectorSource
+    vectors = VectorSource(Path(sys.argv[6]), "seeded-normal", keys=Path(sys.argv[7]))
+pack_source(source, out, val_fraction=0.25, shard_size=3, workers=workers, vectors=vectors)
 """
 
 
-def killed_pack(source: Path, out: Path, when: int, workers: int = 1, method: str = "add") -> None:
+def killed_pack(source: Path, out: Path, when: int, workers: int = 1, method: str = "add",
+                vectors: tuple[Path, Path] | None = None, seen: int = 56) -> None:
     """``align pack`` in a child process, killed with SIGKILL as it enters ``StagedPack.METHOD`` for
     the WHEN-th time (``add``: about to write a sample; ``_record_progress``: a shard just renamed)."""
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
-    done = subprocess.run([sys.executable, "-c", KILLED_PACK, str(source), str(out), method, str(when), str(workers)],
-                          cwd=ROOT, env=env, capture_output=True, text=True, timeout=120)
+    args = [str(source), str(out), method, str(when), str(workers), *(str(p) for p in vectors or ())]
+    done = subprocess.run([sys.executable, "-c", KILLED_PACK, *args], cwd=ROOT, env=env, capture_output=True,
+                          text=True, timeout=120)
     assert done.returncode == -9, done.stderr  # killed, not finished
     assert not (out / "manifest.json").exists()
     progress = json.loads((out / PACK_STAGING / PACK_PROGRESS).read_text())
     finished = [n for split in progress["splits"].values() for n in split["shards"]]
     assert finished and all((out / PACK_STAGING / name).is_file() for name in finished)
-    assert 0 < progress["position"] < 56
+    assert 0 < progress["position"] < seen
 
 
 def test_a_killed_pack_resumes_and_ends_as_an_uninterrupted_one(mixed_folder, one_worker, tmp_path):
@@ -225,6 +234,34 @@ def test_a_pack_killed_between_a_shards_rename_and_its_record_resumes(mixed_fold
     pack_source(mixed_folder, out, val_fraction=0.25, shard_size=3, console=console)
     assert "resuming an interrupted pack" in console.file.getvalue()
     assert folder_bytes(out) == folder_bytes(one_worker)
+
+
+def test_a_killed_pack_with_stored_vectors_resumes(tmp_path):
+    """Caption-and-vector rows (no images): the vectors of samples in the kept shards are taken
+    again from the staged records, so the vectors' cache entries come out the same too."""
+    rng = np.random.default_rng(0)
+    keys = [f"item{i:03d}" for i in range(40)]
+    rows = [{"key": k, "caption": f"item {i}", "shade": str(i % 3)} for i, k in enumerate(keys)]
+    rows += [{"key": "novector", "caption": "a row without a vector"}, {"key": "item007", "caption": "again"}]
+    (tmp_path / "rows.jsonl").write_text("".join(json.dumps(r) + "\n" for r in rows))
+    vectors = rng.normal(size=(41, 8)).astype(np.float32)
+    vectors[3] = np.nan  # vector_not_finite
+    np.save(tmp_path / "v.npy", vectors)
+    (tmp_path / "keys.txt").write_text("\n".join(keys + ["nobody"]) + "\n")  # one unmatched vector
+    source = VectorSource(tmp_path / "v.npy", "seeded-normal", keys=tmp_path / "keys.txt")
+    reference = pack_source(tmp_path / "rows.jsonl", tmp_path / "reference", val_fraction=0.25, shard_size=3,
+                            vectors=source, console=quiet())
+    assert reference["counts"]["rejected_by_reason"] == {"duplicate_key": 1, "missing_vector": 1,
+                                                         "unmatched_vector": 1, "vector_not_finite": 1}
+    assert list(reference["vectors"]["splits"]) == ["train", "val"]
+
+    out = tmp_path / "out"
+    killed_pack(tmp_path / "rows.jsonl", out, when=20, vectors=(tmp_path / "v.npy", tmp_path / "keys.txt"), seen=42)
+    console = quiet()
+    pack_source(tmp_path / "rows.jsonl", out, val_fraction=0.25, shard_size=3, vectors=source, console=console,
+                workers=2)
+    assert "resuming an interrupted pack" in console.file.getvalue()
+    assert folder_bytes(out) == folder_bytes(tmp_path / "reference")  # shards, manifest and the vectors' entries
 
 
 def test_changed_options_or_source_do_not_reuse_staged_shards(mixed_folder, tmp_path):

@@ -234,8 +234,8 @@ def pack_source(source: str | Path, out: str | Path, *, val_fraction: float = 0.
             _drop_unused(stage, out, out_existed)
             raise
         try:
-            manifest = _pack_into(stage, source, out, listing, options, stored, (pool, workers), console,
-                                  _pack_fingerprint(source, listing, options, vectors))
+            manifest = _pack_into(stage, source, out, listing, options, stored, console,
+                                  _pack_fingerprint(source, listing, options, vectors), pool=pool, workers=workers)
         finally:
             listing.close()
     _summary(console, manifest, out / REJECTED)
@@ -243,7 +243,7 @@ def pack_source(source: str | Path, out: str | Path, *, val_fraction: float = 0.
 
 
 def _pack_into(stage: Path, source: Path, out: Path, listing: OrderedListing, options: dict,
-               vectors: StoredVectors | None, checking: tuple, console: Console, fingerprint: str) -> dict:
+               vectors: StoredVectors | None, console: Console, fingerprint: str, *, pool, workers: int) -> dict:
     """Everything into STAGE, then into OUT. A failure leaves the stage for the next run to resume
     from; only a pack that packed nothing removes it (there is nothing to resume)."""
     try:
@@ -251,7 +251,6 @@ def _pack_into(stage: Path, source: Path, out: Path, listing: OrderedListing, op
         if staged.resumed_at:
             console.print(f"resuming an interrupted pack: {staged.resumed_at:,} of {listing.count:,} samples "
                           f"are in finished shards")
-        pool, workers = checking
         _write_samples(listing, staged, pool, workers=workers, val_fraction=options["val_fraction"],
                        max_caption_chars=options["max_caption_chars"], vectors=vectors, console=console)
         if not staged.progress["packed"]:
