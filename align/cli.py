@@ -121,6 +121,9 @@ def cmd_query(args) -> int:
     backend = "faiss" if args.faiss else "exact" if args.exact else args.backend
     answer = query_index(args.index, args.text, k=args.k, backend=backend, export_dir=args.export,
                          where=parse_where(args.where))
+    if args.html:
+        from .index.query_page import write_query_html
+        write_query_html(args.index, answer, args.html, console=console)
     if args.json:
         print(json.dumps(answer, ensure_ascii=False, allow_nan=False))  # strict JSON: no bare NaN, ever
         return 0
@@ -297,6 +300,8 @@ def _add_handoff_commands(sub) -> None:
     p.add_argument("--where", action="append", default=[], metavar="FIELD=VALUE",
                    help="only samples whose label FIELD is VALUE (repeatable: fields AND, values of one field OR)")
     p.add_argument("--export", help="the export to embed queries with (default: the one the index was built with)")
+    p.add_argument("--html", metavar="OUT", help="also write the results as one self-contained HTML file "
+                                                 "(thumbnails, keys, labels, scores; opens offline)")
     p.set_defaults(func=cmd_query)
 
 

@@ -1,10 +1,11 @@
 """The status page in headless Chromium (Debian's chromium package): the token, the job and its charts.
 
 A real ``align serve``, bound beyond loopback so that reads need the token, runs one small job (a
-scratch text tower, 10 steps, a log line per step) on scikit-learn's digits. Chromium, driven over
+scratch text tower, 10 steps, a log line per step, validation recall every 5 steps) on
+scikit-learn's digits. Chromium, driven over
 the DevTools protocol, opens ``/``: the page asks for the token, the test types it into the form,
 and the page shows the job. The test reads the DOM (the job row, the SVG loss chart with one point
-per logged step, the recall chart), the address and history (no token in either), the requests the
+per logged step, the validation chart with one point per validated step, the recall chart), the address and history (no token in either), the requests the
 page sent (the token in the Authorization header of every API call, never in a URL), and writes a
 screenshot to tests/artifacts/status-page.png.
 """
@@ -21,7 +22,7 @@ from service_harness import REPO, Browser, Service, chromium
 
 SCREENSHOT = REPO / "tests" / "artifacts" / "status-page.png"
 PAGE_RECIPE = tiny_toml("scratch", name="page-demo", text__scratch__width=64, text__scratch__vocabulary_size=300,
-                        train__steps=10, train__warmup_steps=2)
+                        train__steps=10, train__warmup_steps=2, train__eval_every=5)
 LOSS_BLUE = (0x2F, 0x6F, 0xDF)  # the loss line's colour in align/service/page.py
 
 pytestmark = pytest.mark.skipif(chromium() is None, reason="needs Debian's chromium package (.ci/run installs it)")
@@ -144,3 +145,22 @@ def _check_job_and_charts(html: str, job: dict, records: list[dict]) -> None:
     recall_svg = re.search(rf'<svg[^>]*data-chart="recall" data-job="{job["id"]}" data-points="(\d+)"', html)
     assert recall_svg and int(recall_svg.group(1)) == 6
     assert 'data-series="text→image"' in html and 'data-series="image→text"' in html
+    # the validation chart: recall at the smallest K both ways and the mean, one point per validated step
+    validated = [r for r in records if "val/mean_recall" in r]
+    assert [r["step"] for r in validated] == [5, 10]
+    val_svg = re.search(rf'<svg[^>]*data-chart="validation" data-job="{job["id"]}" data-points="(\d+)"(.*?)</svg>',
+                        html, re.S)
+    assert val_svg and int(val_svg.group(1)) == 3 * len(validated)
+    lines = {name: points for points, name in re.findall(r'<polyline points="([^"]+)"[^>]*data-series="([^"]+)"',
+                                                         val_svg.group(2))}
+    assert set(lines) == {"text→image R@1", "image→text R@1", "mean"}, lines
+    # each line's vertices: as many as validated steps, the higher logged value drawn higher (SVG y grows down)
+    for name, key in (("text→image R@1", "val/text_to_image_recall@1"), ("image→text R@1", "val/image_to_text_recall@1"),
+                      ("mean", "val/mean_recall")):
+        ys = [float(p.split(",")[1]) for p in lines[name].split()]
+        values = [r[key] for r in validated]
+        assert len(ys) == len(validated)
+        if values[0] == values[1]:
+            assert ys[0] == ys[1], (name, ys, values)
+        else:
+            assert (ys[0] > ys[1]) == (values[0] < values[1]), (name, ys, values)

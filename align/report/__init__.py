@@ -7,7 +7,16 @@
     page.py        HTML pieces: styles, tables, gallery rows, the document
     build.py       ``write_report``: the run folder's records -> report.html + plots/*.png
 """
-from .build import write_report
-from .details import read_details, write_details
-
 __all__ = ["read_details", "write_details", "write_report"]
+
+
+def __getattr__(name: str):
+    # loaded on first use: build.py pulls in matplotlib and torch (seconds), which the service's
+    # status page, importing only search_view.py and thumbnails.py, never needs
+    if name == "write_report":
+        from .build import write_report
+        return write_report
+    if name in ("read_details", "write_details"):
+        from . import details
+        return getattr(details, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

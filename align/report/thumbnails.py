@@ -1,16 +1,38 @@
-"""Small inline pictures of evaluation images, read from the packed shards by key."""
+"""Small pictures of gallery and evaluation images: one way to shrink an image, for the report, the
+service's search view and ``align query --html``."""
 from __future__ import annotations
 
 import base64
 import io
 from pathlib import Path
 
-from PIL import Image
-
+from ..data.pixels import decode_image
 from ..data.shards import iter_image_bytes
 from ..errors import AlignError
 
 THUMBNAIL_PX = 112
+JPEG_QUALITY = 85
+
+
+def shrink_to_jpeg(raw: bytes, side: int = THUMBNAIL_PX) -> bytes:
+    """JPEG bytes of ``raw`` decoded by the pack's rule (EXIF upright, 16-bit scaled, bombs refused) and
+    shrunk to fit a ``side`` x ``side`` box, aspect kept (never enlarged).
+
+    ValueError when the bytes do not decode (Pillow raises many kinds for damaged data; they are
+    folded into one so a caller decides once what a broken picture means).
+    """
+    try:
+        image = decode_image(raw)
+        image.thumbnail((side, side))
+        buffer = io.BytesIO()
+        image.save(buffer, format="JPEG", quality=JPEG_QUALITY)
+    except Exception as exc:  # noqa: BLE001 - see the docstring
+        raise ValueError(f"the image does not decode ({type(exc).__name__}: {str(exc)[:120]})") from None
+    return buffer.getvalue()
+
+
+def jpeg_uri(jpeg: bytes) -> str:
+    return "data:image/jpeg;base64," + base64.b64encode(jpeg).decode("ascii")
 
 
 def thumbnails(shards_dir: str | Path, split: str, keys: set[str], side: int = THUMBNAIL_PX) -> dict[str, str]:
@@ -27,13 +49,9 @@ def thumbnails(shards_dir: str | Path, split: str, keys: set[str], side: int = T
             if key not in keys:
                 continue
             try:
-                image = Image.open(io.BytesIO(raw)).convert("RGB")
-            except Exception:  # PIL raises many kinds for damaged data; the page shows the key alone
+                found[key] = jpeg_uri(shrink_to_jpeg(raw, side))
+            except ValueError:  # the page shows the key alone
                 continue
-            image.thumbnail((side, side))
-            buffer = io.BytesIO()
-            image.save(buffer, format="JPEG", quality=85)
-            found[key] = "data:image/jpeg;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
             if len(found) == len(keys):
                 break
     except (AlignError, OSError):  # the shards moved or are gone: a report still renders, without pictures

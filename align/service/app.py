@@ -12,7 +12,10 @@
     GET  /exports                   exports in HOME/exports (and whether each has a gallery index)
     POST /exports/{name}/embed      {"texts": [...]} -> L2-normalised embeddings
     POST /exports/{name}/search     {"texts": [...], "k": 10, "where": {"glaze": "cobalt"}} -> top-k of the
-                                    export's gallery index (among the samples whose labels match "where")
+                                    export's gallery index (among the samples whose labels match "where"),
+                                    each hit with its labels
+    GET  /exports/{name}/thumbnail?key=KEY&px=160   a JPEG of one of the index's images, shrunk (only
+                                    the index's keys; the file read is confined to the data roots)
 
 The token goes in ``Authorization: Bearer <token>`` only, never in an address. Errors are JSON
 ``{"error": message, "hint": how to fix}``: 400 a malformed request (a Host header that does not
@@ -33,12 +36,13 @@ from pathlib import Path
 
 from fastapi import APIRouter, FastAPI, Query
 from fastapi.exceptions import RequestValidationError
-from fastapi.responses import FileResponse, HTMLResponse, JSONResponse
+from fastapi.responses import FileResponse, HTMLResponse, JSONResponse, Response
 from pydantic import BaseModel, ConfigDict, Field
 
 from .. import __version__
 from .. import artifacts as A
 from ..errors import AlignError, DataError, FingerprintMismatch, RecipeError
+from ..report.search_view import SEARCH_THUMBNAIL_PX
 from .home import Home, Settings, ensure_token
 from .page import STATUS_PAGE
 from .search import ExportCache, NotFound
@@ -49,6 +53,7 @@ from .store import FINAL_STATES, JobStore
 MAX_TEXTS = 256  # texts per embed / search call
 MAX_TEXT_CHARS = 2000
 MAX_K = 1000
+MAX_THUMBNAIL_PX = 512
 STATUS_PAGE_PATH = "/"  # served without the token: static HTML that asks for it (see page.py)
 
 
@@ -89,7 +94,8 @@ def public_job(job: dict, detail: bool = False) -> dict:
     out = {k: job[k] for k in ("id", "name", "state", "phase", "step", "steps", "loss", "pairs_per_s", "elapsed_s",
                                "eta_s", "attempts", "resumed_from", "cancel_requested", "created_at", "started_at",
                                "finished_at", "error", "metrics", "run_dir")}
-    out.update(data=spec.get("data"), export=spec.get("export"), index=spec.get("index"))
+    out.update(data=spec.get("data"), export=spec.get("export"), index=spec.get("index"),
+               processes=job.get("processes", 1), devices=job.get("devices"))
     if detail:
         out["recipe_toml"] = spec.get("recipe_toml")
     return out
@@ -170,9 +176,10 @@ def page_routes(settings: Settings, store: JobStore, workers: Workers) -> APIRou
     @router.get(STATUS_PAGE_PATH, response_class=HTMLResponse)
     def status_page():
         # form-action 'none': the token form is handled by the script and never submitted anywhere
+        # img-src blob:: thumbnails are fetched with the token header and shown as object URLs
         return HTMLResponse(STATUS_PAGE, headers={"Content-Security-Policy": "default-src 'self'; "
                                                   "script-src 'unsafe-inline'; style-src 'unsafe-inline'; "
-                                                  "form-action 'none'",
+                                                  "img-src 'self' blob:; form-action 'none'",
                                                   "Cache-Control": "no-store", "Referrer-Policy": "no-referrer"})
 
     @router.get("/health")
@@ -268,6 +275,12 @@ def export_routes(exports: ExportCache) -> APIRouter:
         _check_texts(request.texts)
         return exports.search(name, request.texts, request.k, request.backend, request.where)
 
+    @router.get("/exports/{name}/thumbnail")
+    def thumbnail(name: str, key: str = Query(..., min_length=1, max_length=1024),
+                  px: int = Query(SEARCH_THUMBNAIL_PX, ge=16, le=MAX_THUMBNAIL_PX)):
+        return Response(exports.thumbnail(name, key, px), media_type="image/jpeg",
+                        headers={"Cache-Control": "no-store", "X-Content-Type-Options": "nosniff"})
+
     return router
 
 
@@ -280,7 +293,7 @@ def create_app(settings: Settings, token: str, start_workers: bool = True) -> Fa
                   redoc_url=None)
     add_error_handlers(app)
     for router in (page_routes(settings, store, workers), job_routes(settings, store, home), artifact_routes(store),
-                   export_routes(ExportCache(home))):
+                   export_routes(ExportCache(home, settings.data_roots))):
         app.include_router(router)
     app.add_middleware(Guard, token=token, token_for_reads=settings.token_for_reads, loopback_only=settings.loopback,
                        max_body=settings.max_body_bytes, public_pages=(STATUS_PAGE_PATH,))

@@ -1,8 +1,15 @@
 """The status page at ``/``: plain HTML and a little JavaScript, no build step, nothing from the network.
 
 It polls ``GET /jobs`` and each shown job's ``GET /jobs/<id>/metrics`` and draws, per job, the
-training loss against the step and recall@K both ways (once the job is evaluated) as inline SVG.
+training loss against the step, the validation recall logged during training (``val/...`` records,
+every ``train.eval_every`` steps) and recall@K both ways (once the job is evaluated) as inline SVG.
 Job text is put in with ``textContent``, never as HTML.
+
+Search: for each export with a gallery index (``GET /exports``) a box takes a caption and shows the
+top-k images of ``POST /exports/<name>/search`` in rank order, drawn by the search view shared with
+``align query --html`` (``align/report/search_view.py``). Each thumbnail is fetched from
+``GET /exports/<name>/thumbnail`` with the token header and shown through an object URL (revoked
+when the next answer replaces it), so the token never goes into an image address.
 
 The token. When the service needs it for reads (bound beyond loopback), the page asks for it once
 in a form: the field has no ``name`` and the form is never submitted (the script handles it, and
@@ -13,7 +20,9 @@ again.
 """
 from __future__ import annotations
 
-STATUS_PAGE = r"""<!doctype html>
+from ..report.search_view import SEARCH_SCRIPT, SEARCH_STYLE, SEARCH_THUMBNAIL_PX
+
+_PAGE = r"""<!doctype html>
 <html lang="en">
 <head>
 <meta charset="utf-8">
@@ -43,6 +52,12 @@ STATUS_PAGE = r"""<!doctype html>
   #login input { font: inherit; width: 26em; padding: 3px 6px; }
   #login .note { color: var(--muted); margin: 6px 0 0; }
   #login-message { color: #a12622; margin-bottom: 6px; }
+  #search h2 { font-size: 16px; margin: 24px 0 6px; }
+  .search-box { background: #fff; border: 1px solid var(--line); border-radius: 6px; padding: 10px 12px; margin-bottom: 12px; }
+  .search-box input { font: inherit; padding: 3px 6px; } .search-box input[type=search] { width: 28em; }
+  .search-box input[type=number] { width: 4em; } .search-box .search-name { font-weight: 600; margin-right: 8px; }
+  .search-box .search-status { color: var(--muted); margin-top: 4px; } .search-box .search-status.error { color: #a12622; }
+/*SEARCH_STYLE*/
 </style>
 </head>
 <body>
@@ -62,6 +77,7 @@ STATUS_PAGE = r"""<!doctype html>
   <tbody></tbody>
 </table>
 <div id="charts"></div>
+<section id="search"><h2>Search an export's gallery</h2><div id="search-boxes" class="muted">loading…</div></section>
 <script>
 "use strict";
 const SHOWN = 8;            // jobs drawn as charts (newest first)
@@ -104,6 +120,7 @@ login.addEventListener("submit", event => {
   sessionStorage.setItem(TOKEN_KEY, token);
   login.hidden = true;
   refresh();
+  if (pendingSearch) { const box = pendingSearch; pendingSearch = null; runSearch(box); }
 });
 
 function el(tag, attrs, text) {
@@ -132,7 +149,7 @@ function duration(seconds) {
 }
 
 // A line chart: series = [{name, color, points: [[x, y], ...]}]; xs drawn as given (numbers).
-function lineChart(kind, jobId, title, series, xLabel, yRange) {
+function lineChart(kind, jobId, title, series, xLabel, yRange, emptyText) {
   const W = 340, H = 200, L = 44, R = 10, T = 22, B = 30;
   const all = series.flatMap(s => s.points);
   const root = svg("svg", { width: W, height: H, viewBox: `0 0 ${W} ${H}`, "data-chart": kind, "data-job": jobId,
@@ -140,8 +157,7 @@ function lineChart(kind, jobId, title, series, xLabel, yRange) {
   root.appendChild(svg("text", { x: L, y: 14, class: "title" }, title));
   root.appendChild(svg("rect", { x: L, y: T, width: W - L - R, height: H - T - B, fill: "#fbfcfe", stroke: "#d9dde5" }));
   if (!all.length) {
-    root.appendChild(svg("text", { x: L + 10, y: T + 40 }, kind === "recall" ? "appears once the job is evaluated"
-                                                                               : "no logged step yet"));
+    root.appendChild(svg("text", { x: L + 10, y: T + 40 }, emptyText || "no logged step yet"));
     return root;
   }
   const xs = all.map(p => p[0]), ys = all.map(p => p[1]);
@@ -164,7 +180,10 @@ function lineChart(kind, jobId, title, series, xLabel, yRange) {
                                        "data-series": s.name }));
     for (const p of s.points) { root.appendChild(svg("circle", { cx: px(p[0]), cy: py(p[1]), r: 2.5, fill: s.color })); }
     if (series.length > 1) {
-      root.appendChild(svg("text", { x: W - R - 4, y: T + 14 + 14 * i, "text-anchor": "end", style: "fill:" + s.color }, s.name));
+      root.appendChild(svg("text", { x: W - R - 4, y: T + 14 + 14 * i, "text-anchor": "end",
+                                   // a halo in the plot's colour keeps the name readable over a line
+                                   style: "fill:" + s.color + "; paint-order: stroke; stroke: #fbfcfe; stroke-width: 3px" },
+                               s.name));
     }
   });
   return root;
@@ -183,6 +202,29 @@ function recallSeries(evaluation) {
     if (points.length) { out.push({ name, color, points }); }
   }
   return out;
+}
+
+// Validation recall logged during training (val/... keys, every train.eval_every steps): recall at the
+// smallest K both ways and their mean over every logged K, against the step.
+function validationSeries(records) {
+  const keys = new Set(records.flatMap(r => Object.keys(r).filter(k => k.startsWith("val/"))));
+  const smallest = direction => [...keys].map(k => k.match(new RegExp("^val/" + direction + "_recall@(\\d+)$")))
+    .filter(Boolean).sort((a, b) => Number(a[1]) - Number(b[1])).map(m => m[0])[0];
+  const out = [];
+  for (const [key, name, color] of [[smallest("text_to_image"), "text→image", "#d9534f"],
+                                    [smallest("image_to_text"), "image→text", "#3a9d5d"],
+                                    ["val/mean_recall", "mean", "#7a4fc9"]]) {
+    if (!key || !keys.has(key)) { continue; }
+    const points = records.filter(r => typeof r[key] === "number").map(r => [r.step, r[key]]);
+    out.push({ name: key === "val/mean_recall" ? name : name + " R@" + key.split("@")[1], color, points });
+  }
+  return out;
+}
+
+function recallRange(series) {
+  const ys = series.flatMap(s => s.points.map(p => p[1]));
+  if (!ys.length) { return [0, 1]; }
+  return [Math.max(0, Math.min(...ys) - 0.05), Math.min(1, Math.max(...ys) + 0.05)];
 }
 
 function jobRow(job) {
@@ -207,12 +249,107 @@ async function jobCard(job) {
     card.appendChild(el("div", { class: "error" }, job.error.message + (job.error.hint ? "\nhint: " + job.error.hint : "")));
   }
   const stream = await getJSON("/jobs/" + job.id + "/metrics");
-  const loss = stream.records.map(r => [r.step, r.loss]);
+  const loss = stream.records.filter(r => typeof r.loss === "number").map(r => [r.step, r.loss]);
+  const validation = validationSeries(stream.records);
   const charts = el("div", { class: "charts" });
   charts.appendChild(lineChart("loss", job.id, "training loss", [{ name: "loss", color: "#2f6fdf", points: loss }], "step"));
-  charts.appendChild(lineChart("recall", job.id, "recall@K (held-out split)", recallSeries(stream.evaluation), "K", [0, 1]));
+  charts.appendChild(lineChart("validation", job.id, "validation recall during training", validation, "step",
+                               recallRange(validation), "none logged (the recipe's train.eval_every is 0)"));
+  charts.appendChild(lineChart("recall", job.id, "recall@K (held-out split)", recallSeries(stream.evaluation), "K", [0, 1],
+                               "appears once the job is evaluated"));
   card.appendChild(charts);
   return card;
+}
+
+/*SEARCH_SCRIPT*/
+
+// ---- search: one box per export with a gallery index ----
+const THUMBNAIL_PX = /*THUMBNAIL_PX*/;
+let searchNames = null;     // the exports whose boxes are drawn (rebuilt only when the list changes)
+let pendingSearch = null;   // a search that waited for the token; run once it is given
+
+async function postJSON(url, body) {
+  const headers = { "Content-Type": "application/json" };
+  if (token) { headers["Authorization"] = "Bearer " + token; }
+  const response = await fetch(url, { method: "POST", headers, body: JSON.stringify(body), cache: "no-store" });
+  if (response.status === 401) {
+    throw new NeedsToken(token ? "The service refused that token." : "Searching needs the service token.");
+  }
+  const answer = await response.json().catch(() => ({}));
+  if (!response.ok) {
+    throw new Error(answer.error ? answer.error + (answer.hint ? " (" + answer.hint + ")" : "") : url + ": " + response.status);
+  }
+  return answer;
+}
+
+// A thumbnail through the API, with the token header, shown as an object URL (never the token in an address).
+async function thumbnailURL(name, key, shown) {
+  const headers = token ? { "Authorization": "Bearer " + token } : {};
+  const url = "/exports/" + encodeURIComponent(name) + "/thumbnail?key=" + encodeURIComponent(key) + "&px=" + THUMBNAIL_PX;
+  const response = await fetch(url, { headers, cache: "no-store" });
+  if (!response.ok) {
+    const refusal = await response.json().catch(() => ({}));
+    throw new Error(refusal.error || String(response.status));
+  }
+  const objectURL = URL.createObjectURL(await response.blob());
+  shown.push(objectURL);
+  return objectURL;
+}
+
+async function runSearch(box) {
+  const name = box.dataset.export;
+  const text = box.querySelector("input[type=search]").value.trim();
+  const k = Math.max(1, Math.min(100, Number(box.querySelector("input[type=number]").value) || 8));
+  const status = box.querySelector(".search-status");
+  const output = box.querySelector(".search-output");
+  if (!text) { status.textContent = "type a caption first"; return; }
+  status.className = "search-status";
+  status.textContent = "searching…";
+  try {
+    const answer = await postJSON("/exports/" + encodeURIComponent(name) + "/search", { texts: [text], k });
+    for (const old of box.shownURLs || []) { URL.revokeObjectURL(old); }
+    box.shownURLs = [];
+    const shown = box.shownURLs;
+    output.replaceChildren(drawQuery(answer.queries[0], key => thumbnailURL(name, key, shown)));
+    box.dataset.searched = String(Number(box.dataset.searched || 0) + 1);
+    status.textContent = answerFacts(answer);
+  } catch (err) {
+    if (err instanceof NeedsToken) {
+      pendingSearch = box;
+      status.textContent = "waiting for the service token";
+      askForToken(err.message);
+      return;
+    }
+    status.className = "search-status error";
+    status.textContent = err.message;
+  }
+}
+
+function searchBox(name) {
+  const box = el("form", { class: "search-box", "data-export": name, autocomplete: "off" });
+  box.appendChild(el("span", { class: "search-name" }, name));
+  const caption = el("input", { type: "search", placeholder: "a caption, e.g. a handwritten seven", maxlength: "2000",
+                                "aria-label": "caption to search " + name + " for" });
+  box.appendChild(caption);
+  box.appendChild(document.createTextNode(" top "));
+  box.appendChild(el("input", { type: "number", min: "1", max: "100", value: "8", "aria-label": "how many images" }));
+  box.appendChild(document.createTextNode(" "));
+  box.appendChild(el("button", { type: "submit" }, "Search"));
+  box.appendChild(el("div", { class: "search-status" }));
+  box.appendChild(el("div", { class: "search-output" }));
+  box.addEventListener("submit", event => { event.preventDefault(); runSearch(box); });  // never submitted
+  return box;
+}
+
+async function drawSearchBoxes() {
+  const { exports } = await getJSON("/exports");
+  const names = exports.filter(e => e.has_index).map(e => e.name);
+  if (searchNames !== null && names.join("\n") === searchNames.join("\n")) { return; }  // keep what is typed
+  searchNames = names;
+  const holder = document.getElementById("search-boxes");
+  holder.className = names.length ? "" : "muted";
+  holder.replaceChildren(...(names.length ? names.map(searchBox)
+    : [document.createTextNode("no export has a gallery index yet (a job with export and index makes one)")]));
 }
 
 async function refresh() {
@@ -228,6 +365,7 @@ async function refresh() {
       " · updated " + new Date().toLocaleTimeString();
     const cards = await Promise.all(jobs.slice(0, SHOWN).map(jobCard));
     document.getElementById("charts").replaceChildren(...cards);
+    await drawSearchBoxes();
   } catch (err) {
     if (err instanceof NeedsToken) {
       document.getElementById("summary").textContent = "waiting for the service token";
@@ -244,3 +382,6 @@ setInterval(refresh, 3000);
 </body>
 </html>
 """
+
+STATUS_PAGE = (_PAGE.replace("/*SEARCH_STYLE*/", SEARCH_STYLE).replace("/*SEARCH_SCRIPT*/", SEARCH_SCRIPT)
+               .replace("/*THUMBNAIL_PX*/", str(SEARCH_THUMBNAIL_PX)))

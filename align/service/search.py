@@ -1,4 +1,4 @@
-"""Exports and gallery indexes, loaded once, answering ``/exports/<name>/embed`` and ``/search``.
+"""Exports and gallery indexes, loaded once, answering ``/exports/<name>/embed``, ``/search`` and ``/thumbnail``.
 
 An export is HOME/exports/<name> (written by a job with ``export``, or by ``align export``); its
 gallery index, when there is one, is HOME/indexes/<name>. A loaded export is reused until its
@@ -6,6 +6,10 @@ export.json changes (a new export of the same name swaps the folder in whole). C
 export are answered by one thread that owns its text encoder (its fast tokenizer is not safe to
 share between threads, and on a CPU two encodes at once are no faster than one after the other);
 calls that arrive together share one batched pass (``Batcher``).
+
+Thumbnails come from the folder an index was built from, only for the index's own keys, and every
+file read for one (the image, or the shard holding it, and the manifest) is confined to the data
+roots at the time of the request: a link planted in the gallery after indexing is refused too.
 """
 from __future__ import annotations
 
@@ -19,9 +23,9 @@ from pathlib import Path
 import numpy as np
 
 from .. import artifacts as A
-from ..errors import AlignError
+from ..errors import AlignError, DataError
 from .home import Home
-from .security import PathRefused, check_name
+from .security import PathRefused, check_name, confine
 
 MAX_LOADED = 4  # exports kept in memory at once (a MiniLM-sized text side is ~100 MB)
 
@@ -93,8 +97,7 @@ class LoadedExport:
     stamp: tuple
     model: object  # align.api.AlignedModel, text side only
     lock: threading.Lock = field(default_factory=threading.Lock)
-    index: object | None = None  # align.index.GalleryIndex
-    index_stamp: tuple | None = None
+    checked_index: object | None = None  # the align.index.GalleryIndex whose image side matched this export's
     batcher: Batcher | None = None
 
     def __post_init__(self):
@@ -107,11 +110,13 @@ def _stamp(path: Path) -> tuple:
 
 
 class ExportCache:
-    def __init__(self, home: Home, max_loaded: int = MAX_LOADED):
+    def __init__(self, home: Home, roots: list[Path] | None = None, max_loaded: int = MAX_LOADED):
         self.home = home
+        self.roots = [Path(r).resolve() for r in roots] if roots else [home.data.resolve()]  # where images may be read
         self.max_loaded = max_loaded
         self._lock = threading.Lock()
         self._loaded: OrderedDict[str, LoadedExport] = OrderedDict()
+        self._galleries: OrderedDict[str, tuple] = OrderedDict()  # name -> (index.json stamp, GalleryHits)
 
     def _folder(self, root: Path, name: str, what: str) -> Path:
         check_name(name, f"{what} name")
@@ -154,21 +159,60 @@ class ExportCache:
         entry = self.get(name)
         return entry.batcher.embed(texts), entry  # (N, D)
 
-    def search(self, name: str, texts: list[str], k: int, backend: str = "auto", where: dict | None = None) -> dict:
-        from ..api import check_image_side_matches
-        from ..index import load_index, query_answer
+    def gallery(self, name: str):
+        """HOME/indexes/<name> loaded (``align.index.hits.GalleryHits``), again whenever its index.json changes."""
+        from ..index import load_index
+        from ..index.hits import GalleryHits
 
-        entry = self.get(name)
         folder = self._folder(self.home.indexes, name, "index")
         info = folder / A.INDEX_INFO
         if not info.is_file():
             raise NotFound(f"index {name!r} is not complete", "wait for the job that builds it to finish")
+        stamp = _stamp(info)
+        with self._lock:
+            known = self._galleries.get(name)
+        if known is None or known[0] != stamp:
+            known = (stamp, GalleryHits(load_index(folder), check=self._confined))
+            with self._lock:
+                self._galleries[name] = known
+                while len(self._galleries) > self.max_loaded:
+                    self._galleries.popitem(last=False)
+        return known[1]
+
+    def _confined(self, path: Path) -> Path:
+        return confine(str(path), self.roots, "gallery file")
+
+    def search(self, name: str, texts: list[str], k: int, backend: str = "auto", where: dict | None = None) -> dict:
+        from ..api import check_image_side_matches
+        from ..index import query_answer
+
+        entry = self.get(name)
         started = time.perf_counter()
+        hits = self.gallery(name)
         with entry.lock:
-            if entry.index is None or entry.index_stamp != _stamp(info):
-                index = load_index(folder)
+            if entry.checked_index is not hits.index:
                 # a gallery embedded by another tower than the export's would answer nonsense
-                check_image_side_matches(entry.model.export_dir, index.info["image_fingerprint"])
-                entry.index, entry.index_stamp = index, _stamp(info)
+                check_image_side_matches(entry.model.export_dir, hits.index.info["image_fingerprint"])
+                entry.checked_index = hits.index
         queries = entry.batcher.embed(texts)  # (Q, D)
-        return query_answer(entry.index, texts, queries, k, backend, started, {"export": name}, where=where)
+        return hits.labelled(query_answer(hits.index, texts, queries, k, backend, started, {"export": name},
+                                          where=where))
+
+    def thumbnail(self, name: str, key: str, side: int) -> bytes:
+        """JPEG bytes of the image of ``key``, one of the index's keys, shrunk to fit ``side`` px."""
+        from ..index.hits import NoPicture, NotInGallery
+        from ..report.thumbnails import shrink_to_jpeg
+
+        hits = self.gallery(name)
+        try:
+            raw = hits.picture(key)
+        except NotInGallery:
+            raise NotFound(f"{key!r} is not a key of the gallery index of export {name!r}",
+                           "ask for the keys a search of this export answered with") from None
+        except NoPicture as exc:
+            raise NotFound(str(exc), "the gallery folder changed after it was indexed; index it again") from None
+        try:
+            return shrink_to_jpeg(raw, side)
+        except ValueError as exc:
+            raise DataError(f"the image of {key!r}: {exc}", "the gallery file is damaged; index the gallery again "
+                                                            "once it is replaced") from None
