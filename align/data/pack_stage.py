@@ -101,7 +101,8 @@ class StagedPack:
                 "records_bytes": 0, "rejects_bytes": 0}
 
     def _resumable_progress(self) -> dict | None:
-        """The last progress record, if it belongs to this listing and every file it names is there."""
+        """The last progress record, if it belongs to this listing and every file it names is there
+        (an open shard renamed after the record is put back under its temporary name first)."""
         try:
             progress = json.loads((self.stage / PACK_PROGRESS).read_text(encoding="utf-8"))
         except (OSError, ValueError):
