@@ -32,7 +32,7 @@ from ..recipe import VisionConfig
 from ..vision import FrozenImageTower, check_fits_in_memory
 from .cache import BuildReport, FeatureSet, entry_problem, load_feature_cache
 from .chunks import ChunkStore, EntryLock, FinishedCount, chunk_count
-from .embed import ChunkJob, ShareResult, embed_claimed
+from .embed import ChunkJob, ShareResult, ShareWalk, embed_claimed
 from .fingerprint import cache_root, closest_entry, feature_fingerprint, fingerprint_digest
 from .processes import LocalBuild
 
@@ -49,7 +49,9 @@ def _progress(split: str, console: Console) -> Progress:
 def _embed_share(tower: FrozenImageTower, job: ChunkJob, cfg: VisionConfig, processes: int, total: int,
                  console: Console, on_chunk: Callable[[int], None] | None) -> tuple[ShareResult, float]:
     """This command's part of the build (every chunk it can claim); (result, the time it started)."""
+    # processes and decoding workers start before the progress thread does (a fork copies held locks)
     local = LocalBuild(processes, tower, cfg, job) if processes > 1 else None
+    walk = ShareWalk(tower, job) if local is None else None
     try:
         started = local.wait_ready() if local is not None else time.perf_counter()
         finished = FinishedCount(ChunkStore(job.entry))
@@ -65,7 +67,7 @@ def _embed_share(tower: FrozenImageTower, job: ChunkJob, cfg: VisionConfig, proc
                 if on_chunk is not None:
                     on_chunk(index)
 
-            result = local.run(chunk_done) if local is not None else embed_claimed(tower, job, chunk_done)
+            result = local.run(chunk_done) if local is not None else walk.run(chunk_done)
     finally:
         if local is not None:
             local.stop()

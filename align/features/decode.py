@@ -67,6 +67,11 @@ class DecodedChunk:
     decoded: list[bool]  # per key: False = the image failed to decode
     pixels: torch.Tensor  # (V, rows, 3, H, W)
 
+    def pin_memory(self) -> DecodedChunk:
+        """The DataLoader's pinning hook (where CUDA is present): page-locked pixels, strides kept."""
+        self.pixels = self.pixels.pin_memory()
+        return self
+
 
 @dataclass
 class StreamEnd:

@@ -62,25 +62,36 @@ def embed_chunk(tower: FrozenImageTower, chunk: DecodedChunk, views: int,
     return keys, features, [key for key, ok in zip(chunk.keys, chunk.decoded) if not ok]
 
 
+class ShareWalk:
+    """One walk over the split, embedding every chunk this process claims. Decoding workers start
+    here, before any progress thread does: a fork beside a running thread can copy a held lock."""
+
+    def __init__(self, tower: FrozenImageTower, job: ChunkJob):
+        self.tower, self.job, self.store = tower, job, ChunkStore(job.entry)
+        self.plain = load_feature_cache(job.plain_entry) if job.plain_entry is not None else None
+        decoded_views = list(range(0 if self.plain is None else 1, job.views))
+        augment = training_transform(tower.preprocessing) if job.views > 1 else None
+        # the tower's own preprocessing, whatever its source: it runs where the decoding runs
+        reader = ChunkReader(job.shards_dir, job.split, job.rows, tower.transform, augment, decoded_views,
+                             tuple(tower.preprocessing["input_size"]), tower.channels_last, job.claim)
+        self.stream = decoded_chunks(reader, job.workers)
+
+    def run(self, on_chunk: Callable[[int, int], None] | None = None) -> ShareResult:
+        """``on_chunk(index, images)`` after each chunk is written."""
+        result = ShareResult(0, 0, 0)
+        for item in self.stream:
+            if isinstance(item, StreamEnd):
+                result.split_images = max(result.split_images, item.images)
+                continue
+            self.store.write(item.index, *embed_chunk(self.tower, item, self.job.views, self.plain))
+            result.images += len(item.keys)
+            result.chunks += 1
+            if on_chunk is not None:
+                on_chunk(item.index, len(item.keys))
+        return result
+
+
 def embed_claimed(tower: FrozenImageTower, job: ChunkJob,
                   on_chunk: Callable[[int, int], None] | None = None) -> ShareResult:
-    """Embed every chunk this process claims on one walk over the split; ``on_chunk(index, images)``
-    after each is written."""
-    store = ChunkStore(job.entry)
-    plain = load_feature_cache(job.plain_entry) if job.plain_entry is not None else None
-    decoded_views = list(range(0 if plain is None else 1, job.views))
-    augment = training_transform(tower.preprocessing) if job.views > 1 else None
-    # the tower's own preprocessing, whatever its source: it runs where the decoding runs
-    reader = ChunkReader(job.shards_dir, job.split, job.rows, tower.transform, augment, decoded_views,
-                         tuple(tower.preprocessing["input_size"]), tower.channels_last, job.claim)
-    result = ShareResult(0, 0, 0)
-    for item in decoded_chunks(reader, job.workers):
-        if isinstance(item, StreamEnd):
-            result.split_images = max(result.split_images, item.images)
-            continue
-        store.write(item.index, *embed_chunk(tower, item, job.views, plain))
-        result.images += len(item.keys)
-        result.chunks += 1
-        if on_chunk is not None:
-            on_chunk(item.index, len(item.keys))
-    return result
+    """Embed every chunk this process claims on one walk over the split."""
+    return ShareWalk(tower, job).run(on_chunk)
