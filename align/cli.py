@@ -65,7 +65,7 @@ def cmd_compare(args) -> int:
 
 def cmd_features(args) -> int:
     from .features import build_recipe_features
-    for feats in build_recipe_features(_recipe(args), console=console):
+    for feats in build_recipe_features(_recipe(args), console=console, processes=args.processes):
         how = (f"built, {feats.build.images_per_s:.0f} img/s" if feats.build else "already cached")
         console.print(f"{feats.fingerprint['split']}: {len(feats)} images x {feats.views} view(s) "
                       f"({how}) in {feats.path}")
@@ -245,6 +245,8 @@ def _add_data_commands(sub) -> None:
     _add_recipe_args(p)
     p.set_defaults(func=cmd_features)
 
+    p.add_argument("--processes", type=int, default=1, metavar="N",
+                   help="embed with N local processes of one thread each (under torchrun every rank builds its share)")
     p = sub.add_parser("vocab", help="how the text tokenizer splits the captions' words; terms worth adding")
     p.add_argument("shards", help="a folder written by align pack")
     p.add_argument("--text-model", help="local transformers model directory (default: the offline MiniLM-L6)")

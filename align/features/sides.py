@@ -30,12 +30,13 @@ class ImageSide:
 
 
 def split_features(cfg: VisionConfig, shards_dir: str | Path, split: str, console: Console, *, views: int = 1,
-                   cache_dir: str | Path | None = None) -> ImageSide:
+                   cache_dir: str | Path | None = None, processes: int = 1) -> ImageSide:
     """A split's frozen features as the recipe wants them: the tower's cache (built on a miss), or
     the packed stored vectors (checked against the tower when there is one)."""
     if not cfg.uses_stored_vectors:
         tower = shared_image_tower(cfg)
-        feats = image_features(tower, shards_dir, split, cfg, console, views=views, cache_dir=cache_dir)
+        feats = image_features(tower, shards_dir, split, cfg, console, views=views, cache_dir=cache_dir,
+                               processes=processes)
         return ImageSide(feats, tower, tower.fingerprint)
     feats = load_stored_features(shards_dir, split)
     record = stored_record(feats)
@@ -76,8 +77,9 @@ def recipe_feature_sets(recipe) -> list[tuple[str, int]]:
     return list(dict.fromkeys(wanted))
 
 
-def build_recipe_features(recipe, console: Console | None = None) -> list[FeatureSet]:
-    """Build (or reuse) every cache of ``recipe`` so training and evaluation start without the tower."""
+def build_recipe_features(recipe, console: Console | None = None, processes: int = 1) -> list[FeatureSet]:
+    """Build (or reuse) every cache of ``recipe`` so training and evaluation start without the tower;
+    ``processes`` > 1 embeds with that many local processes (one thread each)."""
     console = console or Console(stderr=True)
     if not recipe.data.shards:
         raise AlignError("the recipe names no data", "pass --set data.shards=DIR (a folder written by `align pack`)")
@@ -88,5 +90,5 @@ def build_recipe_features(recipe, console: Console | None = None) -> list[Featur
         if not splits.get(split, {}).get("samples"):
             console.print(f"split '{split}' is empty; nothing to cache")
             continue
-        sets.append(split_features(recipe.vision, shards_dir, split, console, views=views).features)
+        sets.append(split_features(recipe.vision, shards_dir, split, console, views=views, processes=processes).features)
     return sets
