@@ -243,10 +243,10 @@ def _add_data_commands(sub) -> None:
     """Features, vocabulary and the demo."""
     p = sub.add_parser("features", help="cache the frozen image features a recipe needs, ahead of training")
     _add_recipe_args(p)
-    p.set_defaults(func=cmd_features)
-
     p.add_argument("--processes", type=int, default=1, metavar="N",
                    help="embed with N local processes of one thread each (under torchrun every rank builds its share)")
+    p.set_defaults(func=cmd_features)
+
     p = sub.add_parser("vocab", help="how the text tokenizer splits the captions' words; terms worth adding")
     p.add_argument("shards", help="a folder written by align pack")
     p.add_argument("--text-model", help="local transformers model directory (default: the offline MiniLM-L6)")
