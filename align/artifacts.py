@@ -92,5 +92,6 @@ SERVICE_DATA = "data"  # the default data root
 SERVICE_FEATURES = "features"  # the frozen-feature cache of every job
 SERVICE_LOGS = "logs"
 SERVICE_LOCKS = "locks"  # one lock file per live worker process
+SERVICE_LAUNCH = "launch"  # a launched job's recipe file and stop request: launch/job-000001.toml, .stop
 JOB_DIR_PATTERN = "job-{id:06d}"
 JOB_LOG = "job.log"  # inside a job's run folder: the console output of its attempts

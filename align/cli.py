@@ -34,10 +34,12 @@ def cmd_pack(args) -> int:
 
 
 def cmd_train(args) -> int:
+    from .service.launch import rank_on_step
     from .training import train
+    on_step = rank_on_step()  # None unless started by align serve's launcher (dies with it, stops on request)
     recipe = _recipe(args)
     run_dir = Path(args.run_dir or Path("runs") / recipe.name)
-    summary = train(recipe, run_dir, resume=args.resume, console=console)
+    summary = train(recipe, run_dir, resume=args.resume, console=console, on_step=on_step)
     if os.environ.get("RANK", "0") == "0":  # under torchrun / accelerate launch, one summary, not one per process
         console.print(f"[green]trained[/green] {summary['steps']} steps in {summary['elapsed_s']:.0f}s "
                       f"({summary['pairs_per_s'] or 0:.0f} pairs/s); run folder: {run_dir}")
@@ -163,7 +165,7 @@ def cmd_jobs(args) -> int:
         job = service.submit(recipe_toml=Path(args.recipe).read_text(encoding="utf-8") if args.recipe else None,
                              recipe_name=args.named, overrides=args.set, data=C.data_argument(args.data),
                              name=args.name, export=args.export, export_onnx=args.onnx,
-                             index=C.data_argument(args.index))
+                             index=C.data_argument(args.index), processes=args.processes)
         console.print(f"queued job {job['id']} ({job['name']}); follow it with: align jobs show {job['id']}")
         if args.wait:
             job = service.wait(job["id"], console)
@@ -337,6 +339,8 @@ def _add_service_commands(sub) -> None:
             q.add_argument("--export", help="after training, export to HOME/exports/NAME (served by /exports/NAME)")
             q.add_argument("--onnx", action="store_true", help="the export includes the ONNX text encoder")
             q.add_argument("--index", help="with --export: index this gallery folder for /exports/NAME/search")
+            q.add_argument("--processes", type=int, default=None, metavar="N",
+                           help="train in N processes (torchrun), each on a GPU of its own or a share of the cores")
             q.add_argument("--wait", action="store_true", help="follow the job until it ends")
         elif name == "list":
             q.add_argument("--state", choices=("queued", "running", "finished", "failed", "cancelled"))

@@ -120,7 +120,9 @@ def print_job(job: dict, console: Console) -> None:
     console.print(f"[bold]job {job['id']}[/bold] {job['name']}: {job['state']}"
                   f"{' (' + job['phase'] + ')' if job['phase'] else ''}, step {job['step']}/{job['steps']}, "
                   f"loss {_num(job['loss'], 4)}, {_num(job['pairs_per_s'], 0)} pairs/s, "
-                  f"time left {_duration(job['eta_s'])}, attempts {job['attempts']}")
+                  f"time left {_duration(job['eta_s'])}, attempts {job['attempts']}"
+                  + (f", {job['processes']} processes" if job.get("processes", 1) > 1 else "")
+                  + (f" on GPU {', '.join(map(str, job['devices']))}" if job.get("devices") else ""))
     console.print(f"run folder: {job['run_dir']}; data: {job['data']}"
                   + (f"; export: {job['export']}" if job.get("export") else ""))
     if job.get("error"):

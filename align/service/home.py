@@ -10,6 +10,7 @@
     HOME/data/          the default data root (more with --data-root)
     HOME/features/      the frozen-feature cache every job shares
     HOME/logs/, HOME/locks/
+    HOME/launch/        a launched job's recipe file and stop request (job-000001.toml, job-000001.stop)
 """
 from __future__ import annotations
 
@@ -94,6 +95,10 @@ class Home:
     def locks(self) -> Path:
         return self.root / A.SERVICE_LOCKS
 
+    @property
+    def launch(self) -> Path:
+        return self.root / A.SERVICE_LAUNCH
+
     def run_dir(self, job_id: int) -> Path:
         return self.runs / A.JOB_DIR_PATTERN.format(id=job_id)
 
@@ -102,7 +107,7 @@ class Home:
         self.root.mkdir(parents=True, exist_ok=True)
         self.root.chmod(0o700)
         for folder in (self.runs, self.exports, self.indexes, self.recipes, self.data, self.features,
-                       self.logs, self.locks):
+                       self.logs, self.locks, self.launch):
             folder.mkdir(exist_ok=True)
         return self
 
@@ -148,6 +153,8 @@ class Settings:
     workers: int = 1
     data_roots: list[Path] = field(default_factory=list)
     max_body_bytes: int = DEFAULT_MAX_BODY_BYTES
+    gpus: int | None = None  # GPUs the jobs share (None: count them); 0 runs every job on the CPU
+    cores: int | None = None  # CPU cores the jobs share (None: count them)
 
     def __post_init__(self):
         self.home = Path(self.home).expanduser().absolute()
@@ -166,6 +173,17 @@ class Settings:
             raise AlignError(f"--workers must be at least 1, got {self.workers}")
         if self.max_body_bytes < 1024:
             raise AlignError(f"--max-body-bytes must be at least 1024, got {self.max_body_bytes}")
+        if self.gpus is None:
+            from .launch import count_gpus  # torch: only the service itself counts, never a client
+
+            self.gpus = count_gpus()
+        if self.cores is None:
+            self.cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+
+    @property
+    def cores_per_job(self) -> int:
+        """A job's share of the cores: the workers run that many jobs side by side."""
+        return max(1, self.cores // self.workers)
 
     @property
     def loopback(self) -> bool:
@@ -178,7 +196,8 @@ class Settings:
 
     def to_json(self) -> dict:
         return {"home": str(self.home), "host": self.host, "port": self.port, "workers": self.workers,
-                "data_roots": [str(r) for r in self.data_roots], "max_body_bytes": self.max_body_bytes}
+                "data_roots": [str(r) for r in self.data_roots], "max_body_bytes": self.max_body_bytes,
+                "gpus": self.gpus, "cores": self.cores}
 
     def save(self) -> None:
         write_json_atomic(Home(self.home).settings_path, self.to_json())
@@ -190,4 +209,5 @@ def load_settings(home: Path) -> Settings:
         raise AlignError(f"no {A.SERVICE_SETTINGS} in {home}", "workers are started by `align serve`, not by hand")
     data = json.loads(path.read_text(encoding="utf-8"))
     return Settings(home=Path(data["home"]), host=data["host"], port=int(data["port"]), workers=int(data["workers"]),
-                    data_roots=[Path(p) for p in data["data_roots"]], max_body_bytes=int(data["max_body_bytes"]))
+                    data_roots=[Path(p) for p in data["data_roots"]], max_body_bytes=int(data["max_body_bytes"]),
+                    gpus=data.get("gpus"), cores=data.get("cores"))

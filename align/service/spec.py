@@ -46,6 +46,8 @@ class JobRequest(BaseModel):
     export_onnx: bool = Field(False, description="the export includes text_encoder.onnx (checked with onnxruntime)")
     index: str | None = Field(None, max_length=4096, description="with export: index this gallery (a packed "
                               "folder or a folder of images inside a data root) into HOME/indexes/<export>")
+    processes: int = Field(1, description="training processes (torchrun ranks), each with its share of the "
+                           "global batch: one GPU each, or a share of the job's CPU cores")
 
 
 def read_named_recipe(home: Home, name: str) -> str:
@@ -185,16 +187,37 @@ def _stored_form(recipe: Recipe) -> str:
     return resolved
 
 
+def check_processes(processes: int, recipe: Recipe, settings: Settings) -> None:
+    """A job's process count against its recipe and what the service holds (RecipeError when it cannot run)."""
+    if isinstance(processes, bool) or not isinstance(processes, int) or processes < 1:
+        raise RecipeError(f"processes must be a whole number of at least 1, got {processes!r}",
+                          "for example processes=2: two training processes share each batch")
+    if settings.gpus:
+        if processes > settings.gpus:
+            raise RecipeError(f"processes = {processes} asks for more GPUs than the service has ({settings.gpus})",
+                              f"send processes={settings.gpus} or fewer: each process trains on a GPU of its own")
+    elif processes > settings.cores_per_job:
+        raise RecipeError(f"processes = {processes} asks for more CPU cores than a job gets here "
+                          f"({settings.cores_per_job}: {settings.cores} cores over {settings.workers} worker(s))",
+                          f"send processes={settings.cores_per_job} or fewer, or start the service with fewer --workers")
+    if recipe.train.batch_size % processes:
+        raise RecipeError(f"train.batch_size = {recipe.train.batch_size} does not split over {processes} processes",
+                          f"each process holds an equal slice of the global batch: pick a batch size divisible by "
+                          f"{processes}, e.g. train.batch_size={recipe.train.batch_size // processes * processes or processes}")
+
+
 def build_spec(request: JobRequest, settings: Settings) -> tuple[str, dict, int]:
     """(job name, spec, steps) for a request; RecipeError / DataError / PathRefused when it is wrong."""
     recipe = _validated_recipe(request, Home(settings.home))
     if request.index and not request.export:
         raise RecipeError("index needs export", "send export=NAME too: the gallery is indexed for that export")
+    check_processes(request.processes, recipe, settings)
     confine_recipe_paths(recipe, settings, request.data)
     name = check_name(request.name or recipe.name, "job name")
     export = check_name(request.export, "export name") if request.export else None
     index = confine_gallery(request.index, settings.data_roots) if request.index else None
     spec = {"recipe_toml": _stored_form(recipe), "data": recipe.data.shards, "export": export,
             "export_onnx": request.export_onnx, "index": str(index) if index else None,
+            "processes": request.processes,
             "submitted": {"recipe_name": request.recipe_name, "overrides": list(request.overrides)}}
     return name, spec, recipe.train.steps

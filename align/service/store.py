@@ -2,7 +2,9 @@
 
 States: queued -> running -> finished | failed | cancelled; a running job whose worker died (a
 crash, ``kill -9``, a reboot) goes back to queued and its next attempt resumes from the run's
-newest checkpoint. Each process opens its own short-lived connections (SQLite connections do
+newest checkpoint. A job asks for ``processes`` training processes; on a machine with GPUs a
+running job holds that many (``devices``, GPU indices as the service numbers them) and no other
+running job is given one of them: the oldest queued job waits until enough are free. Each process opens its own short-lived connections (SQLite connections do
 not cross threads or processes); writes take the lock up front (``BEGIN IMMEDIATE``) so two
 workers never claim the same job. ``synchronous=FULL``: a job the service answered "queued" for
 is on disk even if the machine loses power right after.
@@ -45,7 +47,9 @@ CREATE TABLE IF NOT EXISTS jobs (
     cancel_requested INTEGER NOT NULL DEFAULT 0,
     worker TEXT,                     -- id of the worker process running it
     error TEXT,                      -- JSON {message, hint} when failed
-    metrics TEXT                     -- JSON metrics.json when evaluated
+    metrics TEXT,                    -- JSON metrics.json when evaluated
+    processes INTEGER NOT NULL DEFAULT 1,  -- training processes (torchrun ranks) the job asked for
+    devices TEXT                     -- JSON list of the GPU indices a running job holds
 );
 CREATE INDEX IF NOT EXISTS jobs_state ON jobs (state, id);
 CREATE TABLE IF NOT EXISTS events (
@@ -56,7 +60,9 @@ CREATE TABLE IF NOT EXISTS events (
 CREATE INDEX IF NOT EXISTS events_job ON events (job_id, at);
 """
 
-JSON_COLUMNS = ("spec", "error", "metrics")
+JSON_COLUMNS = ("spec", "error", "metrics", "devices")
+# columns a job store written before they existed gets on opening (name, declaration)
+ADDED_COLUMNS = (("processes", "INTEGER NOT NULL DEFAULT 1"), ("devices", "TEXT"))
 
 
 class JobStore:
@@ -66,6 +72,10 @@ class JobStore:
         with self.connect() as conn:
             conn.execute("PRAGMA journal_mode=WAL")  # persistent in the file: readers never block the writer
             conn.executescript(SCHEMA)
+            have = {row["name"] for row in conn.execute("PRAGMA table_info(jobs)")}
+            for name, declaration in ADDED_COLUMNS:
+                if name not in have:
+                    conn.execute(f"ALTER TABLE jobs ADD COLUMN {name} {declaration}")
 
     @contextmanager
     def connect(self) -> Iterator[sqlite3.Connection]:
@@ -130,8 +140,9 @@ class JobStore:
     def submit(self, name: str, spec: dict, steps: int, run_dir_for: Callable[[int], Path]) -> dict:
         now = time.time()
         with self.write() as conn:
-            cur = conn.execute("INSERT INTO jobs (name, state, spec, created_at, updated_at, steps) "
-                               "VALUES (?, 'queued', ?, ?, ?, ?)", (name, json.dumps(spec), now, now, steps))
+            cur = conn.execute("INSERT INTO jobs (name, state, spec, created_at, updated_at, steps, processes) "
+                               "VALUES (?, 'queued', ?, ?, ?, ?, ?)",
+                               (name, json.dumps(spec), now, now, steps, int(spec.get("processes", 1))))
             job_id = int(cur.lastrowid)
             conn.execute("UPDATE jobs SET run_dir = ? WHERE id = ?", (str(run_dir_for(job_id)), job_id))
             _event(conn, job_id, "queued")
@@ -154,18 +165,31 @@ class JobStore:
 
     # -- the workers' side ------------------------------------------------------------------
 
-    def claim(self, worker: str) -> dict | None:
-        """The oldest queued job, now running on ``worker``; None when the queue is empty."""
+    def claim(self, worker: str, gpus: int = 0) -> dict | None:
+        """The oldest queued job, now running on ``worker``; None when the queue is empty, or when
+        the machine has ``gpus`` GPUs and fewer than the oldest job's processes are free (it keeps
+        its place: a smaller job behind it does not overtake it and starve it). A job asking for
+        more GPUs than the machine has is handed out anyway, for the worker to fail with a message."""
         with self.write() as conn:
-            row = conn.execute("SELECT id FROM jobs WHERE state = 'queued' ORDER BY id LIMIT 1").fetchone()
+            row = conn.execute("SELECT id, processes FROM jobs WHERE state = 'queued' ORDER BY id LIMIT 1").fetchone()
             if row is None:
                 return None
+            devices: list[int] = []
+            if gpus and row["processes"] <= gpus:
+                held = set()
+                for (taken,) in conn.execute("SELECT devices FROM jobs WHERE state = 'running' AND devices IS NOT NULL"):
+                    held.update(json.loads(taken))
+                free = [index for index in range(gpus) if index not in held]
+                if len(free) < row["processes"]:
+                    return None
+                devices = free[:row["processes"]]
             now = time.time()
-            conn.execute("UPDATE jobs SET state = 'running', worker = ?, attempts = attempts + 1, "
+            conn.execute("UPDATE jobs SET state = 'running', worker = ?, attempts = attempts + 1, devices = ?, "
                          "started_at = COALESCE(started_at, ?), updated_at = ?, error = NULL WHERE id = ?",
-                         (worker, now, now, row["id"]))
+                         (worker, json.dumps(devices) if devices else None, now, now, row["id"]))
             attempts = conn.execute("SELECT attempts FROM jobs WHERE id = ?", (row["id"],)).fetchone()[0]
-            _event(conn, row["id"], f"started (attempt {attempts}) on worker {worker}")
+            _event(conn, row["id"], f"started (attempt {attempts}) on worker {worker}"
+                   + (f", GPU {', '.join(map(str, devices))}" if devices else ""))
         return self.get(row["id"])
 
     def started_from(self, job_id: int, step: int) -> None:
@@ -208,6 +232,7 @@ class JobStore:
         now = time.time()
         with self.write() as conn:
             conn.execute("UPDATE jobs SET state = ?, finished_at = ?, updated_at = ?, eta_s = NULL, worker = NULL, "
+                         "devices = NULL, "
                          "metrics = COALESCE(?, metrics), error = ? WHERE id = ?",
                          (state, now, now, json.dumps(metrics) if metrics is not None else None,
                           json.dumps(error) if error else None, job_id))
@@ -216,8 +241,8 @@ class JobStore:
     def requeue(self, job_id: int, reason: str) -> None:
         """Back to the queue (the service is stopping): the next attempt resumes from the checkpoint."""
         with self.write() as conn:
-            conn.execute("UPDATE jobs SET state = 'queued', worker = NULL, eta_s = NULL, updated_at = ? "
-                         "WHERE id = ? AND state = 'running'", (time.time(), job_id))
+            conn.execute("UPDATE jobs SET state = 'queued', worker = NULL, devices = NULL, eta_s = NULL, "
+                         "updated_at = ? WHERE id = ? AND state = 'running'", (time.time(), job_id))
             _event(conn, job_id, reason)
 
     def recover_orphans(self, worker_alive: Callable[[str], bool]) -> list[int]:
@@ -232,19 +257,19 @@ class JobStore:
                     continue
                 recovered.append(row["id"])
                 if row["cancel_requested"]:
-                    conn.execute("UPDATE jobs SET state = 'cancelled', finished_at = ?, updated_at = ?, worker = NULL "
-                                 "WHERE id = ?", (now, now, row["id"]))
+                    conn.execute("UPDATE jobs SET state = 'cancelled', finished_at = ?, updated_at = ?, worker = NULL, "
+                                 "devices = NULL WHERE id = ?", (now, now, row["id"]))
                     _event(conn, row["id"], "its worker stopped after a cancel was requested: cancelled")
                 elif row["attempts"] >= MAX_ATTEMPTS:
                     error = {"message": f"the worker running this job died {row['attempts']} times",
                              "hint": "see HOME/logs/worker-*.log and the job's job.log; a job that kills its "
                                      "process (e.g. out of memory) needs a smaller batch"}
                     conn.execute("UPDATE jobs SET state = 'failed', finished_at = ?, updated_at = ?, worker = NULL, "
-                                 "error = ? WHERE id = ?", (now, now, json.dumps(error), row["id"]))
+                                 "devices = NULL, error = ? WHERE id = ?", (now, now, json.dumps(error), row["id"]))
                     _event(conn, row["id"], f"failed: {error['message']}")
                 else:
-                    conn.execute("UPDATE jobs SET state = 'queued', worker = NULL, eta_s = NULL, updated_at = ? "
-                                 "WHERE id = ?", (now, row["id"]))
+                    conn.execute("UPDATE jobs SET state = 'queued', worker = NULL, devices = NULL, eta_s = NULL, "
+                                 "updated_at = ? WHERE id = ?", (now, row["id"]))
                     _event(conn, row["id"], f"interrupted near step {row['step']} (its worker is gone); "
                                             "queued to resume from its newest checkpoint")
         return recovered

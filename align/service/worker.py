@@ -2,7 +2,11 @@
 
     python -m align.service.worker --home HOME --slot 0 --parent PID     (started by align serve)
 
-A job is train -> evaluate -> [export -> [index]], in the job's run folder HOME/runs/job-N. Every
+A job is train -> evaluate -> [export -> [index]], in the job's run folder HOME/runs/job-N. A job
+of one process on a machine without GPUs trains inside the worker; any other (``processes`` > 1,
+or GPUs to keep apart) trains as ``align train`` under torchrun in a process group of its own
+(``launch``), on the GPUs the store gave it or its share of the cores, while the worker follows
+the run's metrics.jsonl for the job's progress. Evaluation, export and index run in the worker. Every
 attempt resumes from the run's newest checkpoint, so a job cut off anywhere (a crash, ``kill -9``
 of the service, a reboot) continues where its last checkpoint left it, and a resumed run takes
 exactly the steps the uninterrupted one would have (``align.training`` restores weights, optimizer,
@@ -11,8 +15,9 @@ schedule and RNG; the sampler depends only on the step).
 Liveness: a worker holds an exclusive ``flock`` on HOME/locks/worker-<id>.lock for its whole life.
 The kernel drops the lock when the process dies, however it dies, so any worker can tell that a
 "running" job lost its worker (its lock can be taken) and queue it again. On Linux the worker also
-asks to be killed when the service dies (PR_SET_PDEATHSIG), so a ``kill -9`` of the service never
-leaves an orphan training beside the next service's workers.
+asks to be killed when the service dies (PR_SET_PDEATHSIG), and so do a launched training's
+launcher and ranks when their parent dies, so a ``kill -9`` of the service never leaves an orphan
+training beside the next service's workers.
 """
 from __future__ import annotations
 
@@ -31,27 +36,17 @@ from pathlib import Path
 from rich.console import Console
 
 from .. import artifacts as A
-from ..offline import use_offline_defaults
+from ..fileio import write_text_atomic
+from ..offline import offline_env, use_offline_defaults
 from ..run import RunDir
 from ..errors import AlignError
 from .home import Home, Settings, load_settings
-from .spec import confine_recipe_paths
+from .launch import LaunchedTraining, LogTail, die_with_parent, launch_command, launch_env, launch_failure
+from .spec import check_processes, confine_recipe_paths
 from .store import JobStore
 
 POLL_S = 0.5  # how often an idle worker looks at the queue
 RECOVER_EVERY_S = 10.0  # how often an idle worker looks for jobs whose worker died
-
-
-def die_with_parent(parent: int) -> None:
-    """Be killed when the service process dies (Linux), and exit if it is already gone."""
-    if sys.platform.startswith("linux"):
-        import ctypes
-
-        libc = ctypes.CDLL(None, use_errno=True)
-        PR_SET_PDEATHSIG = 1
-        libc.prctl(PR_SET_PDEATHSIG, signal.SIGKILL)
-    if os.getppid() != parent:  # the service died before the request above took effect
-        sys.exit(0)
 
 
 class WorkerLock:
@@ -91,7 +86,7 @@ def run_job(job: dict, store: JobStore, settings: Settings, stop: threading.Even
         console = Console(file=log, width=110, force_terminal=False, color_system=None)
         console.print(f"--- job {job['id']} attempt {job['attempts']} at {time.strftime('%Y-%m-%d %H:%M:%S')}")
         try:
-            return _attempt(job, store, settings, stop, console)
+            return _attempt(job, store, settings, stop, console, log)
         except AlignError as exc:
             console.print(f"error: {exc}")
             store.fail(job["id"], exc.message, exc.hint)
@@ -102,17 +97,19 @@ def run_job(job: dict, store: JobStore, settings: Settings, stop: threading.Even
         return "failed"
 
 
-def _attempt(job: dict, store: JobStore, settings: Settings, stop: threading.Event, console: Console) -> str:
+def _attempt(job: dict, store: JobStore, settings: Settings, stop: threading.Event, console: Console, log) -> str:
     from ..evaluate import evaluate_run
     from ..recipe import recipe_from_toml
-    from ..training import train
 
     job_id, spec, run_dir = job["id"], job["spec"], Path(job["run_dir"])
     home = Home(settings.home)
     recipe = recipe_from_toml(spec["recipe_toml"])
     confine_recipe_paths(recipe, settings, gallery=spec.get("index"))  # again: a link may point elsewhere by now
-    if settings.workers > 1 and recipe.train.threads == 0:
-        recipe.train.threads = max(1, (os.cpu_count() or 1) // settings.workers)  # jobs share the cores
+    processes = int(job.get("processes") or 1)
+    check_processes(processes, recipe, settings)  # again: the service may have restarted on a smaller machine
+    launched = processes > 1 or bool(settings.gpus)
+    if recipe.train.threads == 0 and (launched or settings.workers > 1):
+        recipe.train.threads = max(1, settings.cores_per_job // processes)  # jobs share the cores, ranks the job's
 
     # Resume point: the newest complete checkpoint. train() drops the log lines no checkpoint backs
     # (past it, torn by a kill, or of an attempt cut before its first checkpoint).
@@ -128,16 +125,10 @@ def _attempt(job: dict, store: JobStore, settings: Settings, stop: threading.Eve
 
     if done < recipe.train.steps:
         store.set_phase(job_id, "train")
-        why: dict = {}
-
-        def on_step(record: dict) -> bool:
-            cancel = store.progress(job_id, record, recipe.train.batch_size)
-            why["reason"] = "cancel" if cancel else ("stop" if stop.is_set() else None)
-            return why["reason"] is None  # False: train() writes a checkpoint here and returns
-
-        summary = train(recipe, run_dir, resume=True, console=console, on_step=on_step)
-        if summary["stopped_early"]:
-            return _stopped(store, job_id, why.get("reason") or "stop", summary["steps"])
+        trainer = _train_launched if launched else _train_in_process
+        reason = trainer(job, recipe, done, store, settings, stop, console, log)
+        if reason:
+            return _stopped(store, job_id, reason, RunDir(run_dir).step())
         done = recipe.train.steps
 
     # After training: evaluate, then the export and gallery index the job asked for. A cancel or a
@@ -162,6 +153,64 @@ def _attempt(job: dict, store: JobStore, settings: Settings, stop: threading.Eve
             build_index(home.exports / spec["export"], spec["index"], home.indexes / spec["export"], console=console)
     store.finish(job_id, metrics)
     return "finished"
+
+
+def _train_in_process(job: dict, recipe, done: int, store: JobStore, settings: Settings, stop: threading.Event,
+                      console: Console, log) -> str | None:
+    """train() in this process; returns why it stopped early ("cancel" / "stop"), None when it finished."""
+    from ..training import train
+
+    why: dict = {}
+
+    def on_step(record: dict) -> bool:
+        cancel = store.progress(job["id"], record, recipe.train.batch_size)
+        why["reason"] = "cancel" if cancel else ("stop" if stop.is_set() else None)
+        return why["reason"] is None  # False: train() writes a checkpoint here and returns
+
+    summary = train(recipe, Path(job["run_dir"]), resume=True, console=console, on_step=on_step)
+    return (why.get("reason") or "stop") if summary["stopped_early"] else None
+
+
+def _train_launched(job: dict, recipe, done: int, store: JobStore, settings: Settings, stop: threading.Event,
+                    console: Console, log) -> str | None:
+    """``align train --resume`` under torchrun on the job's devices; the worker follows the run's
+    log for progress and turns a cancel or a stop into the stop file. Returns as _train_in_process."""
+    from ..recipe import dump_recipe
+
+    job_id, run_dir, processes = job["id"], Path(job["run_dir"]), int(job["processes"])
+    home = Home(settings.home)
+    run = RunDir(run_dir)
+    recipe_file = home.launch / f"{run_dir.name}.toml"
+    write_text_atomic(recipe_file, dump_recipe(recipe))
+    run.truncate_log(done)  # as train() will: the tail below then never reports a step of a cut attempt
+    gpus = list(job.get("devices") or [])
+    console.print(f"training in {processes} process(es) on " + (f"GPU {', '.join(map(str, gpus))}" if gpus else
+                  f"CPU, {recipe.train.threads} thread(s) each") + f"; resuming from step {done}")
+    log.flush()
+    output_from = os.path.getsize(run_dir / A.JOB_LOG)
+    env = launch_env(offline_env(dict(os.environ)), home.launch / f"{run_dir.name}.stop", recipe.train.threads, gpus)
+    launched = LaunchedTraining(launch_command(recipe_file, run_dir, processes), env, log,
+                                home.launch / f"{run_dir.name}.stop")
+    tail, reason, status = LogTail(run.metrics_log, done), None, None
+    try:
+        while status is None:
+            status = launched.wait(POLL_S)
+            cancel = False
+            for record in tail.new_records():
+                cancel = store.progress(job_id, record, recipe.train.batch_size) or cancel
+            if status is None and reason is None:
+                reason = "cancel" if cancel or store.cancel_requested(job_id) else ("stop" if stop.is_set() else None)
+                if reason:
+                    launched.request_stop()
+    finally:
+        if status is None:  # an error in this loop: the training must not outlive its follower
+            launched.kill()
+        launched.close()
+    if status != 0:
+        raise launch_failure(run_dir / A.JOB_LOG, output_from, status)
+    if run.step() < recipe.train.steps:
+        return reason or "stop"
+    return None
 
 
 def _stopped(store: JobStore, job_id: int, reason: str, step: int) -> str:
@@ -197,7 +246,7 @@ def main(argv: list[str] | None = None) -> int:
                 for job_id in store.recover_orphans(lambda w: worker_alive(home.locks, w)):
                     print(f"job {job_id} lost its worker; queued again", flush=True)
                 last_recovery = time.monotonic()
-            job = store.claim(worker_id)
+            job = store.claim(worker_id, settings.gpus or 0)
             if job is None:
                 stop.wait(POLL_S)
                 continue
