@@ -3,7 +3,8 @@
 One service on the CPU (CUDA hidden, so the same test runs anywhere) with one worker trains
 conftest's small digits pack with a tiny LoRA recipe, in the order of the tests: the job as one
 process (the reference), the same job as two gloo processes, the two-process job again cut by
-``kill -9`` of the service and resumed, and a cancelled two-process job. The store's GPU
+``kill -9`` of the service and resumed, and a long two-process job stopped with the service,
+resumed, then cancelled. The store's GPU
 allotment (no two running jobs share a GPU) is checked on the store itself, as a GPU-less machine
 can only do.
 
@@ -164,17 +165,29 @@ def test_kill9_mid_two_process_job_resumes_as_two_processes(service, small_digit
 
 
 @pytest.mark.slow
-def test_cancel_stops_every_rank_at_one_checkpoint(service, small_digits_shards, two_process_job):
+def test_service_stop_and_cancel_stop_every_rank_at_one_checkpoint(service, small_digits_shards, two_process_job):
     long = RECIPE.replace(f"steps = {STEPS}", "steps = 400").replace("checkpoint_every = 4", "checkpoint_every = 0")
     job_id = _submit(service, small_digits_shards, WORLD, recipe=long)["id"]
+    run_dir = service.home / "runs" / f"job-{job_id:06d}"
+
+    def checkpoints():
+        return sorted(p.name for p in (run_dir / "checkpoints").iterdir() if not p.name.startswith("."))
+
+    # the service stops (SIGTERM): the ranks checkpoint at one logged step and the job goes back to the queue
     wait_for(lambda: service.job(job_id)["step"] >= 2, 600, "the long two-process job to log a step")
+    service.close()
+    with sqlite3.connect(service.home / "jobs.db") as db:
+        state, stopped_at = db.execute("SELECT state, step FROM jobs WHERE id = ?", (job_id,)).fetchone()
+    assert state == "queued" and checkpoints() == [f"step-{stopped_at:06d}"], (state, stopped_at, checkpoints())
+    # started again, it resumes from there; a cancel then stops it the same way
+    service.start()
+    wait_for(lambda: service.job(job_id)["step"] > stopped_at, 600, "the resumed job to log a step")
     with service.client() as http:
         assert http.post(f"/jobs/{job_id}/cancel").json()["cancel_requested"]
     job = service.wait_job(job_id, timeout_s=300)
-    assert job["state"] == "cancelled" and 2 <= job["step"] < 400, job
-    run_dir = service.home / "runs" / f"job-{job_id:06d}"
-    # the ranks agreed on the step: one checkpoint there, the log up to it, nothing evaluated
-    assert [p.name for p in (run_dir / "checkpoints").iterdir() if not p.name.startswith(".")] == [f"step-{job['step']:06d}"]
+    assert job["state"] == "cancelled" and stopped_at < job["step"] < 400 and job["resumed_from"] == stopped_at, job
+    # one checkpoint per stop, the log contiguous up to the last, nothing evaluated, no stop request left
+    assert checkpoints() == [f"step-{stopped_at:06d}", f"step-{job['step']:06d}"]
     assert [r["step"] for r in _log(service, job)] == list(range(2, job["step"] + 1, 2))
     assert not (run_dir / "metrics.json").exists()
     assert not list((service.home / "launch").glob("*.stop"))
