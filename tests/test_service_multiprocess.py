@@ -249,7 +249,8 @@ def test_launch_failure_reports_the_error_align_train_printed(tmp_path):
     log.write_text("earlier attempt\nerror: old\n")
     start = log.stat().st_size
     with open(log, "a") as fh:
-        fh.write("noise\nerror: cannot read weights /x.pth\n  hint: pass a .safetensors file\nerror: cannot read weights /x.pth\n")
+        fh.write("noise\nerror: cannot read weights /x.pth\n  hint: pass a .safetensors file\n"
+                 "error: cannot read weights /x.pth\n")  # the other rank's copy
     failure = launch_failure(log, start, 2)
     assert failure.message == "cannot read weights /x.pth" and failure.hint == "pass a .safetensors file"
     bare = launch_failure(log, log.stat().st_size, 1)

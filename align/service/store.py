@@ -4,8 +4,9 @@ States: queued -> running -> finished | failed | cancelled; a running job whose 
 crash, ``kill -9``, a reboot) goes back to queued and its next attempt resumes from the run's
 newest checkpoint. A job asks for ``processes`` training processes; on a machine with GPUs a
 running job holds that many (``devices``, GPU indices as the service numbers them) and no other
-running job is given one of them: the oldest queued job waits until enough are free. Each process opens its own short-lived connections (SQLite connections do
-not cross threads or processes); writes take the lock up front (``BEGIN IMMEDIATE``) so two
+running job is given one of them: the oldest queued job waits until enough are free. Each
+process opens its own short-lived connections (SQLite connections do not cross threads or
+processes); writes take the lock up front (``BEGIN IMMEDIATE``) so two
 workers never claim the same job. ``synchronous=FULL``: a job the service answered "queued" for
 is on disk even if the machine loses power right after.
 """
