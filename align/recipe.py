@@ -86,7 +86,9 @@ class TrainConfig:
     warmup_steps: int = _f(20, "linear warm-up steps before the cosine decay")
     grad_clip: float = _f(1.0, "clip the global gradient norm at this value; 0 = off")
     seed: int = _f(0, "seed for initialisation, sampling and dropout")
-    precision: str = _f("fp32", "text-step precision: fp32, or bf16 autocast", ("fp32", "bf16"))
+    precision: str = _f("auto", "text-step precision: bf16 autocast (weights, optimizer and loss stay fp32), "
+                                "fp32, or auto = bf16 where the CPU or GPU multiplies bf16 natively, else fp32; "
+                                "the run records the one it used", ("auto", "fp32", "bf16"))
     threads: int = _f(0, "torch CPU threads; 0 = one per core")
     log_every: int = _f(10, "write a metrics.jsonl line every N steps")
     checkpoint_every: int = _f(100, "checkpoint every N steps (and always at the end); 0 = only at the end")

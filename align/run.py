@@ -13,10 +13,12 @@
 reads their progress record, picks the checkpoint evaluate and export default to (the best
 validation step when ``train.keep_best`` names a metric, else the newest) and keeps it from being
 pruned, rebuilds the trained text tower and loss from a checkpoint, refuses a different image tower,
-and decides whether a recipe may resume the run.
+settles ``train.precision = "auto"`` to the precision the run records, and decides whether a recipe may
+resume the run.
 """
 from __future__ import annotations
 
+import dataclasses
 import json
 import shutil
 import time
@@ -33,6 +35,7 @@ from .fileio import write_text_atomic
 from .loss import build_loss
 from .recipe import Recipe, dump_recipe, load_recipe
 from .text import TextTower, build_text_tower
+from .text.precision import resolve_precision
 from .vision import tower_differences
 
 # Recipe fields a resumed run may change: they steer how long the run goes, how it logs and
@@ -267,6 +270,21 @@ class RunDir:
                 "image_size, pooling; recipe.resolved.toml has them)")
 
     # -- resuming ----------------------------------------------------------------------------
+    def settle_precision(self, recipe: Recipe, device: torch.device) -> Recipe:
+        """``recipe`` with ``train.precision`` concrete, so the run folder and its checkpoints record
+        what the steps compute in. "auto" means this device's native choice on a fresh start, but the
+        run's own recorded precision on a resume: bf16 and fp32 steps give different numbers, so a
+        run resumed on another machine keeps the precision it began with (bf16 on a CPU without bf16
+        instructions is emulated: slower, the same arithmetic). An explicit precision other than the
+        run's is refused by ``check_resume``, like any field that shapes the weights."""
+        requested = recipe.train.precision
+        if requested == "auto" and self.latest() is not None and self.recipe_path.is_file():
+            recorded = self.recipe().train.precision
+            settled = recorded if recorded != "auto" else resolve_precision("auto", device)
+        else:
+            settled = resolve_precision(requested, device)
+        return dataclasses.replace(recipe, train=dataclasses.replace(recipe.train, precision=settled))
+
     def check_resume(self, recipe: Recipe) -> dict[str, tuple]:
         """Refuse a resume whose recipe changes a field that shapes the weights; return the free changes."""
         if not self.recipe_path.is_file():

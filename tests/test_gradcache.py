@@ -223,3 +223,102 @@ def test_length_buckets_cover_every_row_once_and_pad_less(towers):
     for rows in bucketed:
         assert chunk_tokens(tokens, rows, torch.device("cpu"))["input_ids"].shape == (len(rows), int(lengths[rows].max()))
     assert len(plan_chunks(mask, 0, True)) == 1 and len(plan_chunks(mask, len(BATCH), True)) == 1
+
+
+# -- bf16 autocast and the whole slice in length buckets --------------------------------------------
+
+BF16 = torch.autocast("cpu", dtype=torch.bfloat16)
+
+
+def _reference_under(autocast, tower, loss_fn, batch, image, caption_ids, chunk_size, seed):
+    """``_reference_with_all_graphs`` with each chunk's forward under ``autocast``, entered once per
+    chunk as the step enters it (autocast keeps one low-precision copy of each weight per entry)."""
+    tokens = tower.tokenize(batch)
+    pieces, start = [], 0
+    for rows in plan_chunks(tokens["attention_mask"], chunk_size, True):
+        with seeded_rng(torch.device("cpu"), chunk_seed(seed, start)), autocast:
+            pieces.append((rows, tower(**chunk_tokens(tokens, rows, torch.device("cpu"))).float()))
+        start += len(rows)
+    order = torch.cat([rows for rows, _ in pieces])
+    text = torch.cat([emb for _, emb in pieces])[torch.argsort(order)]  # (B, D) in batch order
+    loss = loss_fn(text, image, caption_ids, None)
+    loss.backward()
+    return loss.detach()
+
+
+@pytest.mark.parametrize("kind", ["lora", "full"])
+def test_gradcache_under_bf16_equals_autograd_through_every_chunk(towers, accelerator, image_features, kind):
+    # The chain-rule identity holds for any function the chunks compute, bf16 matrix products
+    # included, provided both passes compute the same one: the step runs every chunk of both passes
+    # under the autocast it is given, so the cached gradient must match the all-graphs reference
+    # under the same autocast as tightly as in fp32 (1e-5, the tolerance above).
+    tower, loss_fn = towers[kind], _loss("softmax")
+    caption_ids, _ = positive_ids(BATCH, None, "caption")
+    params = _params(tower, loss_fn)
+    loss = contrastive_step(tower, tower, loss_fn, BATCH, image_features, caption_ids, None, accelerator, BF16,
+                            chunk_size=4, length_buckets=True, seed=SEED)
+    cached = _take_grads(params)
+    ref_loss = _reference_under(BF16, tower, loss_fn, BATCH, image_features, caption_ids, 4, SEED)
+    reference = _take_grads(params)
+    fp32_loss = _reference_under(NO_AUTOCAST, tower, loss_fn, BATCH, image_features, caption_ids, 4, SEED)
+    _take_grads(params)
+    assert torch.allclose(loss, ref_loss, rtol=1e-6, atol=0)
+    # and bf16 really ran: its loss is not the fp32 one, though close (8 mantissa bits, common practice)
+    assert loss != fp32_loss and abs(float(loss - fp32_loss)) < 2e-2 * abs(float(fp32_loss))
+    worst = _worst_relative(cached, reference)
+    print(f"{kind}/softmax/chunk 4 under bf16: worst relative gradient difference {worst:.2e}")
+    assert worst <= 1e-5, worst
+
+
+def test_the_loss_runs_in_fp32_even_inside_a_callers_bf16_autocast(towers, accelerator, image_features):
+    # Common practice (mixed-precision training): the log-sum-exp over the batch stays fp32. A caller
+    # that wraps the whole step in bf16 autocast must not pull the loss's matrix product into bf16:
+    # the step's loss must equal the loss computed in plain fp32 on the very embeddings it saw.
+    tower, loss_fn = towers["lora"], _loss("softmax")
+    caption_ids, _ = positive_ids(BATCH, None, "caption")
+    seen = []
+    hook = loss_fn.register_forward_pre_hook(lambda module, args: seen.append(
+        (args[0].detach().clone(), args[0].dtype, torch.is_autocast_enabled("cpu"))))
+    try:
+        # a context of the caller's own (one autocast object must not be entered inside itself: its
+        # exit restores the state saved by the inner entry, and autocast would stay on after it)
+        with torch.autocast("cpu", dtype=torch.bfloat16):
+            loss = contrastive_step(tower, tower, loss_fn, BATCH, image_features, caption_ids, None, accelerator,
+                                    BF16, chunk_size=0, length_buckets=False, seed=SEED)
+    finally:
+        hook.remove()
+    _take_grads(_params(tower, loss_fn))
+    (text, dtype, autocast_on), = seen
+    assert dtype == torch.float32 and not autocast_on
+    with torch.no_grad():
+        assert torch.equal(loss, loss_fn(text, image_features, caption_ids, None))
+
+
+def test_whole_slice_in_length_buckets_is_gradient_caching_without_the_replay(
+        towers, accelerator, image_features, monkeypatch):
+    # The whole-slice path encodes a slice longer than WHOLE_SLICE_BUCKET_ROWS in length buckets of
+    # that many rows, each under its chunk seed, every graph alive: the function gradient caching
+    # computes with chunks of that size. Reference: plain autograd through every chunk (as above).
+    import align.training.step as step_module
+    monkeypatch.setattr(step_module, "WHOLE_SLICE_BUCKET_ROWS", 4)  # 14 rows -> buckets 4, 4, 4, 2
+    tower, loss_fn = towers["lora"], _loss("softmax")
+    caption_ids, _ = positive_ids(BATCH, None, "caption")
+    params = _params(tower, loss_fn)
+    encoded_rows = []
+    hook = tower.encoder.register_forward_pre_hook(
+        lambda module, args, kwargs: encoded_rows.append(kwargs["input_ids"].shape), with_kwargs=True)
+    try:
+        loss = contrastive_step(tower, tower, loss_fn, BATCH, image_features, caption_ids, None, accelerator,
+                                NO_AUTOCAST, chunk_size=0, length_buckets=True, seed=SEED)
+    finally:
+        hook.remove()
+    whole = _take_grads(params)
+    ref_loss = _reference_with_all_graphs(tower, loss_fn, image_features, caption_ids, None, 4, True, SEED)
+    reference = _take_grads(params)
+    # one pass, no replay; each bucket trimmed to its own longest caption
+    assert [rows for rows, _ in encoded_rows] == [4, 4, 4, 2]
+    assert encoded_rows[0][1] < tower.tokenize(BATCH)["input_ids"].shape[1]  # the shortest bucket
+    assert torch.allclose(loss, ref_loss, rtol=1e-6, atol=0)
+    worst = _worst_relative(whole, reference)
+    print(f"lora/softmax whole slice in buckets of 4: worst relative gradient difference {worst:.2e}")
+    assert worst <= 1e-5, worst

@@ -43,6 +43,9 @@ def train(recipe: Recipe, run_dir: str | Path, *, resume: bool = False, console:
     run, cfg = RunDir(run_dir), recipe.train
     # the process group first: every later phase asks it for this process's rank and device
     accelerator = start_accelerator(text_kind(recipe.text.kind).find_unused_parameters)
+    # train.precision "auto" -> bf16 or fp32 for this device (a resume: the run's own), recorded as such
+    recipe = run.settle_precision(recipe, accelerator.device)
+    cfg = recipe.train
     # processes sharing a machine share its cores; more threads than cores only thrash
     torch.set_num_threads(cfg.threads or max(1, (os.cpu_count() or 1) // _local_world_size()))
     # the run folder: the resolved recipe sits beside every checkpoint, so a run can always be
