@@ -111,10 +111,10 @@ def bound_host_allocator(threshold: int = 1 << 20) -> bool:
         return False
 
 
-# Rows per bucket of the whole-slice path. Measured on 64 demo captions, LoRA MiniLM, one thread of a
-# busy 2-core machine (noisy): fp32 forward + backward 30-50% faster in 4 buckets of 16 than in one
-# padded batch (2 of 32 and 8 of 8 fell between); bf16 about even (its matrix kernels lose more on
-# shorter products)
+# Rows per bucket of the whole-slice path. Measured on slices of 64 demo captions, LoRA MiniLM, whole
+# steps on one thread of a shared 2-core machine (three alternating rounds, noisy): one padded batch
+# 42.6 / 79.2 pairs/s (fp32 / bf16), buckets of 16 81.7 / 130.7; buckets of 8 and of 32 were slower
+# than 16 in both precisions
 WHOLE_SLICE_BUCKET_ROWS = 16
 
 
