@@ -484,8 +484,9 @@ def precision_comparison(shards: Path, work: Path, cfg: dict, data: TrainingData
 
 
 def scaling(shards: Path, work: Path, cfg: dict, data: TrainingData) -> dict:
-    """Steady seconds per step (median after warm-up) at each pair count, in alternating rounds; start-up
-    (train() called to the first step) and warm-up (the first steps) reported apart."""
+    """Steady seconds per step (median after warm-up) at each pair count, in alternating rounds; warm-up
+    (the first steps) and start-up (train()'s wall time outside its steps: opening the run and the table,
+    building the towers, and the final checkpoint) reported apart."""
     cache, size, w = work / f"cache-{cfg['sizes'][0]}-w0", cfg["sizes"][0], cfg["warmup"]
     tables = {n: tiled(data, n, shards, work) for n in cfg["scaling"]}
     parts: dict = {n: {"steady_s": [], "warmup_s": [], "startup_s": []} for n in cfg["scaling"]}
@@ -541,7 +542,7 @@ def plot(result: dict, path: Path) -> None:
     s = result["scaling"]
     left.plot(s["pairs"], s["steady_step_s"], "o-", label="steady step (median after warm-up)")
     left.plot(s["pairs"], s["warmup_s"], "s--", label=f"first {result['config']['warmup']} step(s)")
-    left.plot(s["pairs"], s["startup_s"], "^:", label="start-up before the first step")
+    left.plot(s["pairs"], s["startup_s"], "^:", label="start-up and final checkpoint (outside the steps)")
     left.set_xscale("log")
     left.set_xlabel("training pairs")
     left.set_ylabel("seconds")
