@@ -111,8 +111,6 @@ class EvalConfig:
                                  "fields not listed use prompts")
     probe_c: float = _f(1.0, "inverse regularisation strength of the linear probe (logistic regression)")
     probe_max_iter: int = _f(1000, "linear probe solver iterations")
-
-
     probe_rows: int = _f(20000, "the linear probe fits on at most this many training rows: a sample seeded by "
                                 "train.seed that keeps each class's share (0 = every row)")
     recall_method: str = _f("exact", "how recall ranks the gallery: exact (every rank, scored in blocks) or faiss "
@@ -120,6 +118,8 @@ class EvalConfig:
                             ("exact", "faiss"))
     block_rows: int = _f(4096, "rows per side of one block of scores (a 4096 x 4096 block is 64 MiB); images "
                                "are classified this many at a time too")
+
+
 @dataclass
 class Recipe:
     name: str = _f("run", "a short name for the run")
