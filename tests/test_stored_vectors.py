@@ -193,3 +193,20 @@ def test_the_tower_check_refuses_vectors_made_at_another_resolution(digits, tmp_
         build_recipe_features(other, QUIET)
     message = str(refused.value)
     assert "below 0.999" in message and "crop" in message and "mean/std" in message and "pooling" in message
+
+
+def test_vector_entries_written_in_blocks_equal_one_block(digits, tmp_path, monkeypatch):
+    """Rows are converted and hashed a block at a time (memory flat at millions of rows); the entry's
+    bytes, fingerprint and hash do not depend on the block size (byte equality with one block)."""
+    import align.data.vectors as vectors_module
+
+    whole = tmp_path / "whole"
+    pack_source(digits["captions"], whole, val_fraction=0.2, vectors=digits["npy"], console=QUIET)
+    monkeypatch.setattr(vectors_module, "ROWS_PER_BLOCK", 7)  # many blocks, a partial last one
+    blocked = tmp_path / "blocked"
+    pack_source(digits["captions"], blocked, val_fraction=0.2, vectors=digits["npy"], console=QUIET)
+    files = sorted(p.relative_to(whole) for p in (whole / A.FEATURE_ROOT).rglob("*") if p.is_file())
+    assert len(files) == 8  # two splits x (fingerprint, keys, skipped, rows)
+    for name in files:
+        assert (blocked / name).read_bytes() == (whole / name).read_bytes(), name
+    assert not list(blocked.rglob("*.partial"))

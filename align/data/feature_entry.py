@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 from pathlib import Path
 
 import numpy as np
@@ -45,3 +46,17 @@ def write_entry(entry: Path, fingerprint: dict, keys: list[str], rows: np.ndarra
     write_bytes_atomic(entry / FEATURE_KEYS, lines_bytes(keys))
     write_bytes_atomic(entry / FEATURE_SKIPPED, lines_bytes(skipped))
     write_bytes_atomic(entry / FEATURES, np.ascontiguousarray(rows).tobytes())
+
+
+def write_entry_from_file(entry: Path, fingerprint: dict, keys: list[str], rows_file: Path, skipped: list[str]) -> None:
+    """A complete entry whose rows (N, K, D) float16 were already written to ``rows_file`` (same
+    filesystem): fingerprint first, the rows moved in last."""
+    per_row = 2 * fingerprint["views"] * fingerprint["tower"]["feature_dim"]
+    if rows_file.stat().st_size != per_row * len(keys):
+        raise ValueError(f"{rows_file} holds {rows_file.stat().st_size} bytes, {len(keys)} rows need "
+                         f"{per_row * len(keys)}")
+    entry.mkdir(parents=True, exist_ok=True)
+    write_json_atomic(entry / FINGERPRINT, fingerprint)
+    write_bytes_atomic(entry / FEATURE_KEYS, lines_bytes(keys))
+    write_bytes_atomic(entry / FEATURE_SKIPPED, lines_bytes(skipped))
+    os.replace(rows_file, entry / FEATURES)

@@ -33,9 +33,11 @@ from pathlib import Path
 
 import numpy as np
 
-from ..artifacts import FEATURE_ROOT, FINGERPRINT
+from ..artifacts import FEATURE_ROOT, FEATURES, FINGERPRINT
 from ..errors import DataError
-from .feature_entry import FORMAT_VERSION, fingerprint_digest, write_entry
+from .feature_entry import FORMAT_VERSION, fingerprint_digest, write_entry_from_file
+
+ROWS_PER_BLOCK = 65_536  # rows converted at a time when writing an entry (~400 MB as float64 at 768-d)
 from .sources import Reject, explicit_key
 
 
@@ -152,21 +154,30 @@ class StoredVectors:
         return np.ldexp(rows, -exponent.astype(np.int64)).astype(np.float16)[:, None, :]
 
     def write_entries(self, stage: Path, splits: dict[str, dict]) -> dict:
-        """One entry per split that took rows, into STAGE/features/; returns the manifest's record."""
+        """One entry per split that took rows, into STAGE/features/; returns the manifest's record.
+
+        Rows are converted and written ROWS_PER_BLOCK at a time (their float64 form for the whole
+        split would be 8 x N x D bytes: 24 GB at 4M x 768), hashed as they go; the entry's folder is
+        named by a fingerprint that holds that hash, so the rows land in a temporary file first."""
         record = {"file": self.source.path.name, "model": self.source.model, "dim": self.dim, "splits": {}}
         for split, taken in sorted(self._taken.items()):
             keys = [k for k, _ in taken]
-            rows = self._rows([i for _, i in taken])
+            temp = stage / f".{split}-{FEATURES}.partial"
             digest = hashlib.sha256()
-            for key, row in zip(keys, rows):
-                digest.update(key.encode("utf-8") + b"|" + row.astype("<f2").tobytes())
+            with open(temp, "wb") as out:
+                for start in range(0, len(taken), ROWS_PER_BLOCK):
+                    block = taken[start:start + ROWS_PER_BLOCK]
+                    rows = self._rows([i for _, i in block])  # (b, 1, D) float16
+                    for (key, _), row in zip(block, rows):
+                        digest.update(key.encode("utf-8") + b"|" + row.astype("<f2").tobytes())
+                    out.write(np.ascontiguousarray(rows).tobytes())
             side = {"source": "stored", "model": self.source.model, "weights_sha256": None, "files_sha256": None,
                     "preprocessing": None, "pooling": None, "normalisation": "l2", "feature_dim": self.dim,
                     "vectors_sha256": digest.hexdigest()}
             fingerprint = {"format_version": FORMAT_VERSION, "tower": side, "split": split,
                            "split_content_hash": splits[split]["content_hash"], "split_samples": splits[split]["samples"],
                            "views": 1, "augmentation": None, "dtype": "float16"}
-            write_entry(stage / FEATURE_ROOT / fingerprint_digest(fingerprint), fingerprint, keys, rows, [])
+            write_entry_from_file(stage / FEATURE_ROOT / fingerprint_digest(fingerprint), fingerprint, keys, temp, [])
             record["splits"][split] = {"rows": len(keys), "content_sha256": digest.hexdigest()}
         return record
 
