@@ -267,17 +267,28 @@ class Browser:
     def wait_for(self, expression: str, timeout_s: float, what: str):
         return wait_for(lambda: self.evaluate(expression), timeout_s, what)
 
-    def requests(self) -> list[dict]:
-        """Requests the pages sent since the last call: {url, headers}."""
-        sent = []
+    def drain(self) -> tuple[list[dict], list[str]]:
+        """(requests the pages sent: {url, headers}; console errors, warnings and uncaught exceptions)
+        since the last call."""
+        sent, errors = [], []
         while True:
             try:
                 event = self.events.get_nowait()
             except queue.Empty:
-                return sent
-            if event.get("method") == "Network.requestWillBeSent":
-                request = event["params"]["request"]
-                sent.append({"url": request["url"], "headers": request.get("headers", {})})
+                return sent, errors
+            method, params = event.get("method"), event.get("params", {})
+            if method == "Network.requestWillBeSent":
+                sent.append({"url": params["request"]["url"], "headers": params["request"].get("headers", {})})
+            elif method == "Runtime.exceptionThrown":
+                errors.append(json.dumps(params["exceptionDetails"])[:300])
+            elif method == "Runtime.consoleAPICalled" and params.get("type") in ("error", "warning", "assert"):
+                errors.append(json.dumps(params.get("args"))[:300])
+            elif method == "Log.entryAdded" and params["entry"].get("level") in ("error", "warning"):
+                errors.append(params["entry"].get("text", "")[:300])
+
+    def requests(self) -> list[dict]:
+        """Requests the pages sent since the last call: {url, headers}."""
+        return self.drain()[0]
 
     def screenshot(self, path: Path) -> None:
         path.write_bytes(base64.b64decode(self.call("Page.captureScreenshot", {"format": "png"})["data"]))

@@ -15,6 +15,8 @@ Tolerance 1e-5 relative (from the issue), per tensor: max |g - g_ref| <= 1e-5 * 
 """
 from __future__ import annotations
 
+import contextlib
+
 import copy
 from contextlib import contextmanager
 
@@ -103,13 +105,16 @@ def _worst_relative(grads, reference) -> float:
                for name, ref in reference.items())
 
 
-def _reference_with_all_graphs(tower, loss_fn, image, caption_ids, label_ids, chunk_size, buckets, seed):
-    """Plain autograd: every chunk encoded with its graph (same per-chunk seeds), one loss, one backward."""
-    tokens = tower.tokenize(BATCH)
+def _reference_with_all_graphs(tower, loss_fn, image, caption_ids, label_ids, chunk_size, buckets, seed, *,
+                               batch=BATCH, autocast=None):
+    """Plain autograd: every chunk encoded with its graph (same per-chunk seeds), one loss, one backward.
+    With ``autocast``, each chunk's forward runs under it, entered once per chunk as the step enters
+    it (autocast keeps one low-precision copy of each weight per entry)."""
+    tokens = tower.tokenize(batch)
     pieces, start = [], 0
     for rows in plan_chunks(tokens["attention_mask"], chunk_size, buckets):
-        with seeded_rng(torch.device("cpu"), chunk_seed(seed, start)):
-            pieces.append((rows, tower(**chunk_tokens(tokens, rows, torch.device("cpu")))))
+        with seeded_rng(torch.device("cpu"), chunk_seed(seed, start)), (autocast or contextlib.nullcontext()):
+            pieces.append((rows, tower(**chunk_tokens(tokens, rows, torch.device("cpu"))).float()))
         start += len(rows)
     order = torch.cat([rows for rows, _ in pieces])
     text = torch.cat([emb for _, emb in pieces])[torch.argsort(order)]  # (B, D) in batch order
@@ -230,22 +235,6 @@ def test_length_buckets_cover_every_row_once_and_pad_less(towers):
 BF16 = torch.autocast("cpu", dtype=torch.bfloat16)
 
 
-def _reference_under(autocast, tower, loss_fn, batch, image, caption_ids, chunk_size, seed):
-    """``_reference_with_all_graphs`` with each chunk's forward under ``autocast``, entered once per
-    chunk as the step enters it (autocast keeps one low-precision copy of each weight per entry)."""
-    tokens = tower.tokenize(batch)
-    pieces, start = [], 0
-    for rows in plan_chunks(tokens["attention_mask"], chunk_size, True):
-        with seeded_rng(torch.device("cpu"), chunk_seed(seed, start)), autocast:
-            pieces.append((rows, tower(**chunk_tokens(tokens, rows, torch.device("cpu"))).float()))
-        start += len(rows)
-    order = torch.cat([rows for rows, _ in pieces])
-    text = torch.cat([emb for _, emb in pieces])[torch.argsort(order)]  # (B, D) in batch order
-    loss = loss_fn(text, image, caption_ids, None)
-    loss.backward()
-    return loss.detach()
-
-
 @pytest.mark.parametrize("kind", ["lora", "full"])
 def test_gradcache_under_bf16_equals_autograd_through_every_chunk(towers, accelerator, image_features, kind):
     # The chain-rule identity holds for any function the chunks compute, bf16 matrix products
@@ -258,9 +247,11 @@ def test_gradcache_under_bf16_equals_autograd_through_every_chunk(towers, accele
     loss = contrastive_step(tower, tower, loss_fn, BATCH, image_features, caption_ids, None, accelerator, BF16,
                             chunk_size=4, length_buckets=True, seed=SEED)
     cached = _take_grads(params)
-    ref_loss = _reference_under(BF16, tower, loss_fn, BATCH, image_features, caption_ids, 4, SEED)
+    ref_loss = _reference_with_all_graphs(tower, loss_fn, image_features, caption_ids, None, 4, True, SEED,
+                                          autocast=BF16)
     reference = _take_grads(params)
-    fp32_loss = _reference_under(NO_AUTOCAST, tower, loss_fn, BATCH, image_features, caption_ids, 4, SEED)
+    fp32_loss = _reference_with_all_graphs(tower, loss_fn, image_features, caption_ids, None, 4, True, SEED,
+                                           autocast=NO_AUTOCAST)
     _take_grads(params)
     assert torch.allclose(loss, ref_loss, rtol=1e-6, atol=0)
     # and bf16 really ran: its loss is not the fp32 one, though close (8 mantissa bits, common practice)

@@ -185,27 +185,6 @@ def test_the_best_checkpoint_is_the_best_logged_step_and_evaluate_uses_it(valida
 # the report and the comparison
 
 
-def _drain(browser: Browser) -> tuple[list[str], list[str]]:
-    """(urls requested, console errors and exceptions) since the last call."""
-    import queue
-
-    urls, errors = [], []
-    while True:
-        try:
-            event = browser.events.get_nowait()
-        except queue.Empty:
-            return urls, errors
-        method, params = event.get("method"), event.get("params", {})
-        if method == "Network.requestWillBeSent":
-            urls.append(params["request"]["url"])
-        elif method == "Runtime.exceptionThrown":
-            errors.append(json.dumps(params["exceptionDetails"])[:300])
-        elif method == "Runtime.consoleAPICalled" and params.get("type") in ("error", "warning", "assert"):
-            errors.append(json.dumps(params.get("args"))[:300])
-        elif method == "Log.entryAdded" and params["entry"].get("level") in ("error", "warning"):
-            errors.append(params["entry"].get("text", "")[:300])
-
-
 @pytest.mark.skipif(chromium() is None, reason="needs Debian's chromium package (.ci/run installs it)")
 def test_the_report_opens_offline_in_chromium_with_curves_fields_and_gallery(validated_runs, tmp_path):
     whole, _ = validated_runs
@@ -237,7 +216,8 @@ def test_the_report_opens_offline_in_chromium_with_curves_fields_and_gallery(val
         assert page["intervals"] >= 6 and page["scripts"] == 0, page
         SCREENSHOT.parent.mkdir(parents=True, exist_ok=True)
         browser.screenshot(SCREENSHOT)
-        urls, errors = _drain(browser)
+        sent, errors = browser.drain()
+        urls = [request["url"] for request in sent]
     finally:
         browser.close()
     assert not errors, errors

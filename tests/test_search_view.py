@@ -14,7 +14,6 @@ import json
 import shutil
 from pathlib import Path
 
-import httpx
 import numpy as np
 import pytest
 from PIL import Image
@@ -87,23 +86,6 @@ def _labels_text(labels: dict) -> str:
     return ", ".join(f"{k}: {v}" for k, v in sorted(labels.items())) or "no labels"
 
 
-def _drain(browser: Browser) -> tuple[list[dict], list[str]]:
-    """(requests sent: url and headers, console errors and uncaught exceptions) since the last call."""
-    sent, errors = [], []
-    while not browser.events.empty():
-        event = browser.events.get_nowait()
-        method, params = event.get("method"), event.get("params", {})
-        if method == "Network.requestWillBeSent":
-            sent.append({"url": params["request"]["url"], "headers": params["request"].get("headers", {})})
-        elif method == "Runtime.exceptionThrown":
-            errors.append(json.dumps(params["exceptionDetails"])[:300])
-        elif method == "Runtime.consoleAPICalled" and params.get("type") in ("error", "warning", "assert"):
-            errors.append(json.dumps(params.get("args"))[:300])
-        elif method == "Log.entryAdded" and params["entry"].get("level") in ("error", "warning"):
-            errors.append(params["entry"].get("text", "")[:300])
-    return sent, errors
-
-
 SHOWN_HITS = """(() => [...document.querySelectorAll(FIGURES)].map(f => ({
     rank: Number(f.dataset.rank), key: f.dataset.key,
     loaded: !!f.querySelector('img') && f.querySelector('img').complete && f.querySelector('img').naturalWidth > 0,
@@ -130,7 +112,7 @@ def test_page_search_shows_the_exact_top_k_in_order_with_the_token_header(servic
         # only exports that have an index get a box: both here
         assert browser.evaluate("[...document.querySelectorAll('form.search-box')].map(f => f.dataset.export)") \
             == ["digits", "folder"]
-        _drain(browser)
+        browser.drain()
         browser.evaluate(f"(() => {{ const box = document.querySelector({box!r}); "
                          f"box.querySelector('input[type=search]').value = {CAPTION!r}; "
                          f"box.querySelector('input[type=number]').value = '{K}'; "
@@ -139,7 +121,7 @@ def test_page_search_shows_the_exact_top_k_in_order_with_the_token_header(servic
                          f"[...document.querySelectorAll({box + ' figure.search-hit img'!r})]"
                          ".every(i => i.complete && i.naturalWidth > 0)", 60, f"{K} thumbnails")
         shown = _shown_hits(browser, box)
-        sent, errors = _drain(browser)
+        sent, errors = browser.drain()
         SCREENSHOT.parent.mkdir(parents=True, exist_ok=True)
         browser.call("Emulation.setDeviceMetricsOverride", {"width": 1280, "height": 900, "deviceScaleFactor": 1,
                                                              "mobile": False})
@@ -256,7 +238,7 @@ def test_query_html_opens_offline_with_k_thumbnails(galleries, tmp_path, capsys)
                          f"=== {K} && [...document.images].every(i => i.complete && i.naturalWidth > 0)", 30,
                          f"{K} thumbnails drawn")
         shown = _shown_hits(browser, "#results")
-        sent, errors = _drain(browser)
+        sent, errors = browser.drain()
     finally:
         browser.close()
     assert not errors, errors
