@@ -111,6 +111,7 @@ def write_source(folder: Path, n: int, seed: int = 0) -> None:
                 keys.write(key + "\n")
     vectors.flush()
     del vectors
+    (folder / "source-written").write_text("")  # the pack may start (or resume) from these files
 
 
 def recipe_text(shards: Path, batch: int, steps: int) -> str:
@@ -133,16 +134,19 @@ keep_checkpoints = 1
 
 
 def prepare(out: Path, n: int, batch: int, steps: int) -> Path:
-    """The packed dataset of n pairs and its recipe, made once and in stages (a pack already made is
-    kept; ``ready`` marks a dataset whose caches are built too)."""
+    """The packed dataset of n pairs and its recipe, made once and in stages (a source already written
+    or a pack already made is kept; ``ready`` marks a dataset whose training table is built too)."""
     folder = out / f"stored-{n}"
     recipe, packed = folder / "recipe.toml", folder / "packed"
     if not (folder / "ready").is_file():
         print(f"preparing {n:,} stored-vector pairs under {folder} (once)", flush=True)
         if not (packed / "manifest.json").is_file():
-            shutil.rmtree(folder, ignore_errors=True)
-            folder.mkdir(parents=True)
-            write_source(folder, n)
+            if not (folder / "source-written").is_file():
+                shutil.rmtree(folder, ignore_errors=True)
+                folder.mkdir(parents=True)
+                write_source(folder, n)
+            # else: the source is complete (it is written before the pack starts, and removed only after
+            # the pack finished); an interrupted pack resumes from its finished shards
             _run(ALIGN + ["pack", str(folder / "rows.csv"), "--out", str(packed), "--vectors",
                           str(folder / "vectors.npy"), "--vector-keys", str(folder / "keys.txt"),
                           "--vector-model", "synthetic-768", "--shard-size", "10000", "--workers", "2"],
