@@ -15,6 +15,9 @@ vectors, batch ``--batch``, one logged line per step), what is measured:
 * ``first_step_s``: seconds from the child's start to its first optimizer step's log line (the
   process start, the imports, the text tower, opening the training table, one step);
 * ``peak_rss``: the child's peak resident set size (``wait4``'s ``ru_maxrss``), nothing subtracted;
+  ``peak_anon`` / ``peak_file_pages``: the peaks of its anonymous memory and of the file pages it
+  has mapped (``RssAnon`` / ``RssFile``, sampled every 20 ms): the process's own memory, and page
+  cache of the memory-mapped features and table (shared with other processes, reclaimable);
 * ``steps_per_s``: steady-state steps per second over the logged steps after the first two.
 
 Pack: the demo catalogue's drawn tiles packed with 1 and with 2 worker processes (one thread each),
@@ -169,8 +172,14 @@ def time_training(recipe: Path, run_dir: Path) -> dict:
     with open(errors, "w") as stderr:
         child = subprocess.Popen(ALIGN + ["train", str(recipe), "--run-dir", str(run_dir)], env=_env(),
                                  stdout=subprocess.DEVNULL, stderr=stderr, cwd=ROOT)
-    first_step_s = float("nan")
+    first_step_s, peak_anon, peak_file = float("nan"), 0, 0
     while True:  # wait4 (not poll) so the rusage read is this child's alone
+        try:  # the child's own memory and the file pages (page cache) it has mapped, apart
+            status_text = Path(f"/proc/{child.pid}/status").read_text()
+            peak_anon = max(peak_anon, int(status_text.split("RssAnon:")[1].split()[0]) * 1024)
+            peak_file = max(peak_file, int(status_text.split("RssFile:")[1].split()[0]) * 1024)
+        except (OSError, IndexError, ValueError):
+            pass
         pid, status, usage = os.wait4(child.pid, os.WNOHANG)
         if first_step_s != first_step_s and log.is_file() and log.stat().st_size:
             first_step_s = time.perf_counter() - started
@@ -185,7 +194,8 @@ def time_training(recipe: Path, run_dir: Path) -> dict:
     steady = records[2:]  # the first steps carry warm-up (allocator, first kernels)
     rate = ((len(steady) - 1) / (steady[-1]["elapsed_s"] - steady[0]["elapsed_s"]) if len(steady) > 1
             else float("nan"))
-    return {"first_step_s": first_step_s, "peak_rss": usage.ru_maxrss * 1024, "steps_per_s": rate,
+    return {"first_step_s": first_step_s, "peak_rss": usage.ru_maxrss * 1024, "peak_anon": peak_anon,
+            "peak_file_pages": peak_file, "steps_per_s": rate,
             "final_loss": records[-1]["loss"] if records else None}
 
 
@@ -276,14 +286,18 @@ def plot(rows: list[dict], summary: dict, path: Path) -> None:
 
     fig, axes = plt.subplots(1, 3, figsize=(13, 3.8))
     sizes = [r["pairs"] for r in rows]
-    axes[0].plot(sizes, [r["peak_rss"] / GIB for r in rows], "o-")
-    axes[0].set(xscale="log", xlabel="training pairs", ylabel="peak RSS (GiB)", title="memory of align train")
+    axes[0].plot(sizes, [r["peak_rss"] / GIB for r in rows], "o-", label="peak RSS")
+    if all("peak_anon" in r for r in rows):
+        axes[0].plot(sizes, [r["peak_anon"] / GIB for r in rows], "s--", label="anonymous (its own memory)")
+        axes[0].plot(sizes, [r["peak_file_pages"] / GIB for r in rows], "^:", label="mapped file pages (page cache)")
+    axes[0].set(xscale="log", xlabel="training pairs", ylabel="GiB", title="memory of align train")
     axes[0].set_ylim(bottom=0)
+    axes[0].legend(loc="lower right", fontsize=8)
     axes[1].plot(sizes, [r["first_step_s"] for r in rows], "o-", label="first optimizer step")
     axes[1].axhline(60, color="grey", linestyle=":", label="target at 4M")
     axes[1].set(xscale="log", xlabel="training pairs", ylabel="seconds from start", title="time to the first step")
     axes[1].set_ylim(bottom=0)
-    axes[1].legend(loc="lower right", fontsize=8)
+    axes[1].legend(loc="center right", fontsize=8)
     names = ["pack", "feature build"]
     values = [summary.get("pack_speedup_2_workers") or 0, summary.get("build_speedup_2_processes") or 0]
     axes[2].bar(names, values, color=["#4c72b0", "#55a868"])
@@ -300,10 +314,12 @@ def print_table(rows: list[dict], summary: dict) -> None:
     from rich.table import Table
 
     table = Table(title="training from stored vectors (768-d), one fresh process per size")
-    for name in ("pairs", "first step (s)", "peak RSS (GiB)", "steps/s", "final loss"):
+    for name in ("pairs", "first step (s)", "peak RSS (GiB)", "anonymous / file pages (GiB)", "steps/s",
+                 "final loss"):
         table.add_column(name, justify="right")
     for r in rows:
         table.add_row(f"{r['pairs']:,}", f"{r['first_step_s']:.1f}", f"{r['peak_rss'] / GIB:.2f}",
+                      f"{r['peak_anon'] / GIB:.2f} / {r['peak_file_pages'] / GIB:.2f}",
                       f"{r['steps_per_s']:.2f}", f"{r['final_loss']:.3f}")
     targets = Table(title="targets")
     for name in ("figure", "value", "target", "met"):
@@ -347,6 +363,8 @@ def main(argv: list[str] | None = None) -> int:
     summary["rss_ratio_largest_vs_smallest"] = by_size[largest]["peak_rss"] / by_size[smallest]["peak_rss"]
     if 100_000 in by_size and 4_000_000 in by_size:
         summary["rss_ratio_4m_vs_100k"] = by_size[4_000_000]["peak_rss"] / by_size[100_000]["peak_rss"]
+        # the same split: the process's own memory, and the mapped page cache (shared, reclaimable)
+        summary["anon_ratio_4m_vs_100k"] = by_size[4_000_000]["peak_anon"] / by_size[100_000]["peak_anon"]
         summary["first_step_s_4m"] = by_size[4_000_000]["first_step_s"]
 
     tiles = drawn_tiles(out, args.pack_tiles_per_pair)
