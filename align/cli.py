@@ -67,12 +67,13 @@ def cmd_compare(args) -> int:
 
 def cmd_features(args) -> int:
     from .features import build_recipe_features
-    for feats in build_recipe_features(_recipe(args), console=console, processes=args.processes):
+    recipe = _recipe(args)
+    for feats in build_recipe_features(recipe, console=console, processes=args.processes):
         how = (f"built, {feats.build.images_per_s:.0f} img/s" if feats.build else "already cached")
         console.print(f"{feats.fingerprint['split']}: {len(feats)} images x {feats.views} view(s) "
                       f"({how}) in {feats.path}")
     from .training.data import prepare_tables  # the captions and ids, so training starts without the shards
-    for table in prepare_tables(_recipe(args), console):
+    for table in prepare_tables(recipe, console):
         console.print(f"training table: {len(table)} rows ({'built' if table.built else 'already built'}) "
                       f"in {table.path}")
     return 0
