@@ -20,8 +20,6 @@ import json
 from pathlib import Path
 
 import numpy as np
-import torch
-import torch.nn.functional as F
 from rich.console import Console
 
 from . import artifacts as A
@@ -52,13 +50,12 @@ def _rows_with_features(table: SplitTable, feats: FeatureSet) -> list[int]:
 
 def unit_rows(feats: FeatureSet, rows: np.ndarray, block: int) -> np.ndarray:
     """View-0 rows ``rows`` as float32 unit rows, read ``block`` at a time from the float16 memory
-    map, so no second float32 copy of the table exists. Per row the numbers are the ones
-    ``FeatureSet.embeddings`` gives (torch's normalise, one reduction per row). (n, D)"""
+    map through ``FeatureSet.unit_rows`` (the rows training sees), so no second float32 copy of the
+    table exists. (n, D)"""
     rows = np.asarray(rows, dtype=np.int64)
     out = np.empty((rows.size, feats.array.shape[2]), dtype=np.float32)          # (n, D)
     for start in range(0, rows.size, block):
-        picked = np.asarray(feats.array[rows[start:start + block], 0], dtype=np.float32)  # (b, D)
-        out[start:start + block] = F.normalize(torch.from_numpy(picked), dim=-1).numpy()
+        out[start:start + block] = feats.unit_rows(rows[start:start + block]).numpy()  # (b, D)
     return out
 
 
